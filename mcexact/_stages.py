@@ -1,0 +1,264 @@
+"""Compile a :class:`~mcexact.design.Design` into the coded stage problem the kernels run on.
+
+Recoding (Hirji, Mehta & Patel 1987 list covariate recoding among their speed-ups): when the
+events of every stratum are conditioned on, a column may be shifted by any constant within a
+stratum and divided by a common factor without changing the conditional distribution, since
+``sum_i (z_i - a_h) y_i = T - a_h n_h`` is an affine map of T. Shifting each column to a minimum
+of zero within its stratum and dividing by the columns' greatest common divisor makes every
+covariate non-negative and small, so partial sums only grow and their ranges (the radices of the
+packed keys) are as tight as they can be. The map back to the user's integer scale is recorded.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from math import gcd
+
+import numpy as np
+from scipy.special import gammaln
+
+from mcexact._exceptions import BudgetExceeded
+
+# Packed keys are int64; staying below 2**62 leaves headroom for the multiply-add of an arc.
+KEY_LIMIT = 2**62
+
+
+@dataclass(frozen=True)
+class StageProblem:
+    """The coded problem: one stage per binomial group, in processing order.
+
+    Attributes
+    ----------
+    trials : (K,) int64
+    nuisance : (K, p) int64, coded nuisance covariates (non-negative when ``fixed``)
+    interest : (K, q) int64, coded interest covariates
+    fixed : bool, whether each stratum's events are conditioned on
+    c_target : (K,) int64, events of the stage's stratum
+    stratum_end : (K,) bool
+    rem_trials, later_lo, later_hi, rem_lo, rem_hi, unit_min, unit_max : pruning bounds per stage
+    s : (p,) int64, coded observed nuisance statistics
+    observed : (q,) int64, coded observed interest statistics
+    interest_step, interest_offset : (q,) int64, ``t_user = step * t_coded + offset``
+    order : (K,) int64, the design's group index of each stage
+    log_binom : list of (m_k + 1,) float64, log binomial coefficients per stage
+    """
+
+    trials: np.ndarray
+    nuisance: np.ndarray
+    interest: np.ndarray
+    fixed: bool
+    c_target: np.ndarray
+    stratum_end: np.ndarray
+    rem_trials: np.ndarray
+    later_lo: np.ndarray
+    later_hi: np.ndarray
+    rem_lo: np.ndarray
+    rem_hi: np.ndarray
+    unit_min: np.ndarray
+    unit_max: np.ndarray
+    s: np.ndarray
+    observed: np.ndarray
+    interest_step: np.ndarray
+    interest_offset: np.ndarray
+    order: np.ndarray
+    log_binom: list
+    c_radix: int
+    u_lo: np.ndarray
+    u_stride: np.ndarray
+    v_lo: np.ndarray
+    v_radix: np.ndarray
+    v_stride: np.ndarray
+
+    @property
+    def n_stages(self) -> int:
+        return int(self.trials.shape[0])
+
+    @property
+    def v_size(self) -> int:
+        return int(np.prod(self.v_radix, dtype=object))
+
+    def z_step(self, k: int) -> int:
+        """Packed increment of the interest sums for one event at stage k."""
+        return int(self.interest[k] @ self.v_stride)
+
+    def decode_v(self, packed: np.ndarray) -> np.ndarray:
+        """Unpack interest partial sums and map them back to the user's integer scale."""
+        packed = np.asarray(packed, dtype=np.int64)
+        cols = [(packed // self.v_stride[j]) % self.v_radix[j] + self.v_lo[j]
+                for j in range(self.v_radix.shape[0])]
+        coded = np.stack(cols, axis=1) if cols else np.zeros((packed.shape[0], 0), np.int64)
+        return coded * self.interest_step + self.interest_offset
+
+
+def _greedy_extremes(values: np.ndarray, trials: np.ndarray, events: int) -> tuple[int, int]:
+    """Least and greatest sum of `events` unit values drawn from groups (value, trials)."""
+    order = np.argsort(values, kind="stable")
+    v, m = values[order], trials[order]
+    before = np.cumsum(m) - m
+    low_take = np.clip(events - before, 0, m)
+    v_desc, m_desc = v[::-1], m[::-1]
+    before_desc = np.cumsum(m_desc) - m_desc
+    high_take = np.clip(events - before_desc, 0, m_desc)
+    return int(low_take @ v), int(high_take @ v_desc)
+
+
+def _column_gcd(col: np.ndarray) -> int:
+    g = 0
+    for value in np.unique(np.abs(col)):
+        g = gcd(g, int(value))
+        if g == 1:
+            break
+    return g
+
+
+def _stage_order(stratum: np.ndarray, nuisance: np.ndarray, interest: np.ndarray) -> np.ndarray:
+    """Processing order: stratum by stratum; within a stratum sorted by covariate value.
+
+    Sorting by covariate value is among the speed-ups of Hirji, Mehta & Patel (1987): groups with
+    similar covariates are processed together, so partial sums coincide (and merge) early.
+    """
+    keys = [interest[:, j] for j in reversed(range(interest.shape[1]))]
+    keys += [nuisance[:, j] for j in reversed(range(nuisance.shape[1]))]
+    keys.append(stratum)
+    return np.lexsort(keys)
+
+
+def compile_design(design, order: np.ndarray | None = None) -> StageProblem:
+    """Recode a design and lay out its stages (see the module docstring).
+
+    Parameters
+    ----------
+    design : mcexact.Design
+    order : permutation of the design's groups, optional
+        Processing order within strata (groups are always grouped by stratum first). Default: the
+        covariate-sorted order of :func:`_stage_order`. Exposed so tests can check that the
+        distribution does not depend on it.
+    """
+    events = np.asarray(design.events, dtype=np.int64)
+    trials = np.asarray(design.trials, dtype=np.int64)
+    stratum = np.asarray(design.stratum, dtype=np.int64)
+    W = np.asarray(design.nuisance, dtype=np.int64).reshape(events.shape[0], -1)
+    Z = np.asarray(design.interest, dtype=np.int64).reshape(events.shape[0], -1)
+    fixed = bool(design.fix_stratum_totals)
+
+    if order is None:
+        order = _stage_order(stratum, W, Z)
+    else:
+        order = np.asarray(order, dtype=np.int64)
+        order = order[np.argsort(stratum[order], kind="stable")]
+    events, trials, stratum, W, Z = events[order], trials[order], stratum[order], W[order], Z[order]
+    K = events.shape[0]
+
+    # Stratum layout.
+    starts = np.flatnonzero(np.r_[True, stratum[1:] != stratum[:-1]])
+    ends = np.r_[starts[1:], K]
+    n_events = np.add.reduceat(events, starts) if K else np.zeros(0, np.int64)
+
+    # Shift within strata (only valid when each stratum's events are fixed), then divide by gcd.
+    W = W.copy()
+    Z = Z.copy()
+    z_offset = np.zeros(Z.shape[1], dtype=np.int64)
+    if fixed:
+        for h, (a, b) in enumerate(zip(starts, ends)):
+            w_shift = W[a:b].min(axis=0) if W.shape[1] else np.zeros(0, np.int64)
+            z_shift = Z[a:b].min(axis=0)
+            W[a:b] -= w_shift
+            Z[a:b] -= z_shift
+            z_offset += z_shift * n_events[h]
+    keep = [j for j in range(W.shape[1]) if np.any(W[:, j] != 0)]
+    W = W[:, keep]
+    w_gcd = np.array([_column_gcd(W[:, j]) for j in range(W.shape[1])], dtype=np.int64)
+    if W.shape[1]:
+        W //= w_gcd
+    z_gcd = np.array([max(_column_gcd(Z[:, j]), 1) for j in range(Z.shape[1])], dtype=np.int64)
+    Z //= z_gcd
+
+    s = W.T @ events
+    observed = Z.T @ events
+    p, q = W.shape[1], Z.shape[1]
+
+    # Per-stratum extremes given the stratum's events (for later strata), and stage-wise bounds.
+    stage_stratum = np.repeat(np.arange(starts.shape[0]), ends - starts)
+    later_lo = np.zeros((K, p), dtype=np.int64)
+    later_hi = np.zeros((K, p), dtype=np.int64)
+    rem_lo = np.zeros((K, p), dtype=np.int64)
+    rem_hi = np.zeros((K, p), dtype=np.int64)
+    unit_min = np.zeros((K, p), dtype=np.int64)
+    unit_max = np.zeros((K, p), dtype=np.int64)
+    rem_trials = np.zeros(K, dtype=np.int64)
+    if fixed:
+        ext = np.array([[_greedy_extremes(W[a:b, j], trials[a:b], int(n))
+                         for j in range(p)] for a, b, n in zip(starts, ends, n_events)],
+                       dtype=np.int64).reshape(len(starts), p, 2)
+        suffix = np.cumsum(ext[::-1], axis=0)[::-1]          # strata h..H-1
+        after = np.concatenate([suffix[1:], np.zeros((1, p, 2), np.int64)])  # strata h+1..H-1
+        later_lo[:] = after[stage_stratum, :, 0]
+        later_hi[:] = after[stage_stratum, :, 1]
+    contrib = W * trials[:, None]
+    for a, b in zip(starts, ends):
+        if b - a < 2:
+            continue
+        # Suffix sums and extremes over the stratum's groups after each stage.
+        rest = slice(a + 1, b)
+        rem_trials[a:b - 1] = np.cumsum(trials[rest][::-1])[::-1]
+        if p:
+            rem_lo[a:b - 1] = np.cumsum(np.minimum(contrib[rest], 0)[::-1], axis=0)[::-1]
+            rem_hi[a:b - 1] = np.cumsum(np.maximum(contrib[rest], 0)[::-1], axis=0)[::-1]
+            unit_min[a:b - 1] = np.minimum.accumulate(W[rest][::-1], axis=0)[::-1]
+            unit_max[a:b - 1] = np.maximum.accumulate(W[rest][::-1], axis=0)[::-1]
+    stratum_end = np.zeros(K, dtype=bool)
+    stratum_end[ends - 1] = True
+    c_target = n_events[stage_stratum] if K else np.zeros(0, np.int64)
+
+    # Key layout: nuisance key = c + sum_j (u_j - u_lo_j) * u_stride_j.
+    if fixed:
+        c_radix = int(n_events.max()) + 1 if K else 1
+        u_lo = np.zeros(p, dtype=np.int64)
+        u_hi = s.copy()                                    # covariates >= 0: partial sums only grow
+        v_lo = np.zeros(q, dtype=np.int64)
+        v_hi = np.array([sum(_greedy_extremes(Z[a:b, j], trials[a:b], int(n))[1]
+                             for a, b, n in zip(starts, ends, n_events)) for j in range(q)],
+                        dtype=np.int64)
+    else:
+        c_radix = 1
+        u_lo = np.minimum(W * trials[:, None], 0).sum(axis=0)
+        u_hi = np.maximum(W * trials[:, None], 0).sum(axis=0)
+        v_lo = np.minimum(Z * trials[:, None], 0).sum(axis=0)
+        v_hi = np.maximum(Z * trials[:, None], 0).sum(axis=0)
+    u_radix = [int(x) for x in (u_hi - u_lo + 1)]
+    u_stride, size = [], c_radix
+    for r in u_radix:
+        u_stride.append(size)
+        size *= r
+    if size >= KEY_LIMIT:
+        raise BudgetExceeded(
+            "mcexact: the nuisance statistics span too wide a range for exact enumeration "
+            f"(about {float(size):.3g} possible partial sums); use a Monte Carlo method or "
+            "coarsen the nuisance covariates", what="key_space", reached=min(size, 2**63 - 1),
+            limit=KEY_LIMIT)
+    v_radix = [int(x) for x in (v_hi - v_lo + 1)]
+    v_stride, vsize = [], 1
+    for r in v_radix:
+        v_stride.append(vsize)
+        vsize *= r
+    if vsize >= KEY_LIMIT:
+        raise BudgetExceeded(
+            "mcexact: the interest statistics span too wide a range for exact enumeration "
+            f"(about {float(vsize):.3g} possible values); use a Monte Carlo method or coarsen "
+            "the interest covariates", what="key_space", reached=min(vsize, 2**63 - 1),
+            limit=KEY_LIMIT)
+
+    log_binom = []
+    for m in trials:
+        y = np.arange(m + 1)
+        log_binom.append(gammaln(m + 1.0) - gammaln(y + 1.0) - gammaln(m - y + 1.0))
+
+    return StageProblem(
+        trials=trials, nuisance=np.ascontiguousarray(W), interest=np.ascontiguousarray(Z),
+        fixed=fixed, c_target=np.asarray(c_target, np.int64), stratum_end=stratum_end,
+        rem_trials=rem_trials, later_lo=later_lo, later_hi=later_hi, rem_lo=rem_lo,
+        rem_hi=rem_hi, unit_min=unit_min, unit_max=unit_max, s=np.asarray(s, np.int64),
+        observed=np.asarray(observed, np.int64), interest_step=z_gcd, interest_offset=z_offset,
+        order=order, log_binom=log_binom, c_radix=c_radix, u_lo=u_lo,
+        u_stride=np.array(u_stride, dtype=np.int64), v_lo=v_lo,
+        v_radix=np.array(v_radix, dtype=np.int64), v_stride=np.array(v_stride, dtype=np.int64))

@@ -1,0 +1,395 @@
+"""Exact conditional distributions by the network algorithm, and planning before running it.
+
+Public entry points: :func:`plan` (how large the networks are, before the full one is built) and
+:func:`exact_distribution` (the exact distribution of the interest statistics given the nuisance
+statistics). The stage kernels live in ``mcexact/_network.pyx``; this module validates budgets,
+orchestrates the stages, and turns status codes into exceptions.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from mcexact import _network
+from mcexact._exceptions import BudgetExceeded, DataError
+from mcexact._stages import KEY_LIMIT, StageProblem, compile_design
+from mcexact.distribution import ConditionalDistribution
+
+__all__ = ["DEFAULT_MAX_NODES", "NuisanceNetwork", "Plan", "plan", "exact_distribution"]
+
+#: Default node budget. A node of the full network costs about 90 bytes at the peak of a stage
+#: (its arrays in the current and next stage plus a half-full hash table; measured by
+#: benchmarks/bench_network.py), so 25 million nodes stay near 2-3 GB and leave most of a 24 GB
+#: machine to the rest of the work.
+DEFAULT_MAX_NODES = 25_000_000
+
+# A dense block slot costs 8 bytes against about 90 for a hashed node, so the dense layout is used
+# whenever its largest stage needs at most this many slots per node of budget (same memory or less).
+DENSE_SLOTS_PER_NODE = 5
+
+# Arcs of the nuisance network are kept for the forward pass (16 bytes each); allow a few per node.
+ARCS_PER_NODE = 8
+
+
+def _check_budget(max_nodes) -> int:
+    if max_nodes is None:
+        return DEFAULT_MAX_NODES
+    if isinstance(max_nodes, bool) or not isinstance(max_nodes, (int, np.integer)) or max_nodes < 1:
+        raise DataError(f"max_nodes must be a positive integer, got {max_nodes!r}")
+    return int(max_nodes)
+
+
+@dataclass
+class NuisanceNetwork:
+    """The pruned network over nuisance partial sums, with completion weights.
+
+    Attributes
+    ----------
+    problem : StageProblem
+        The coded stages.
+    arc_ptr, arc_succ, arc_y, arc_logp : list of arrays, one entry per stage
+        Arcs from stage k to stage k + 1: node i's arcs are ``arc_ptr[k][i]:arc_ptr[k][i + 1]``,
+        leading to node ``arc_succ`` with ``arc_y`` events in the group, with log transition
+        probability ``arc_logp`` under the null (beta = 0).
+    log_b : list of arrays
+        Log weighted number of completions of every node (stage 0 holds the root only).
+    stage_nodes : list of int
+        Nodes alive at each stage 0..K.
+    """
+
+    problem: StageProblem
+    arc_ptr: list
+    arc_succ: list
+    arc_y: list
+    arc_logp: list
+    log_b: list
+    stage_nodes: list
+    seconds: float = 0.0
+
+    @property
+    def n_nodes(self) -> int:
+        return int(sum(self.stage_nodes))
+
+    @property
+    def n_arcs(self) -> int:
+        return int(sum(a.shape[0] for a in self.arc_succ))
+
+    @property
+    def log_total(self) -> float:
+        """Log of the weighted number of response vectors with the observed nuisance statistics."""
+        return float(self.log_b[0][0])
+
+
+def _raise_budget(what: str, status: int, reached: int, limit: int, stage: int, n_stages: int):
+    if status == _network.STATUS_NO_MEMORY:
+        raise MemoryError(f"mcexact: out of memory at stage {stage} of {n_stages} of the "
+                          f"{what} network; lower max_nodes or use a Monte Carlo method")
+    unit = "arcs" if status == _network.STATUS_ARC_BUDGET else "nodes"
+    hint = ("a Markov chain Monte Carlo method is needed" if what == "nuisance"
+            else "the nuisance network fits, so direct Monte Carlo sampling can run")
+    raise BudgetExceeded(
+        f"mcexact: the {what} network exceeded its budget of {limit:,} {unit} at stage {stage} "
+        f"of {n_stages} (reached {reached:,}); raise max_nodes if memory allows, or {hint}",
+        what=what, reached=reached, limit=limit, stage=stage)
+
+
+def build_nuisance_network(problem: StageProblem, max_nodes: int) -> NuisanceNetwork:
+    """Grow the nuisance network forward with bound pruning, then prune it backward exactly."""
+    t0 = time.perf_counter()
+    K = problem.n_stages
+    p = problem.nuisance.shape[1]
+    comp = np.zeros((1, 1 + p), dtype=np.int64)
+    fwd_ptr, fwd_succ, fwd_y, counts = [], [], [], [1]
+    total = 1
+    max_arcs = ARCS_PER_NODE * max_nodes
+    total_arcs = 0
+    for k in range(K):
+        status, nxt, ptr, succ, ys = _network.expand_nuisance_stage(
+            comp, int(problem.trials[k]), problem.nuisance[k], problem.fixed,
+            int(problem.c_target[k]), bool(problem.stratum_end[k]), int(problem.rem_trials[k]),
+            problem.s, problem.later_lo[k], problem.later_hi[k], problem.rem_lo[k],
+            problem.rem_hi[k], problem.unit_min[k], problem.unit_max[k], problem.u_stride,
+            problem.u_lo, 1, max_nodes - total, max_arcs - total_arcs)
+        if status != _network.STATUS_OK:
+            reached = total + nxt if status == _network.STATUS_NODE_BUDGET else total_arcs + succ
+            limit = max_nodes if status == _network.STATUS_NODE_BUDGET else max_arcs
+            _raise_budget("nuisance", status, reached, limit, k + 1, K)
+        fwd_ptr.append(ptr)
+        fwd_succ.append(succ)
+        fwd_y.append(ys)
+        comp = nxt
+        counts.append(nxt.shape[0])
+        total += nxt.shape[0]
+        total_arcs += succ.shape[0]
+    if comp.shape[0] != 1:
+        raise AssertionError("mcexact internal error: the nuisance network did not close on S")
+
+    # Backward: completion weights, then drop dead nodes and renumber stage by stage.
+    log_b_next = np.zeros(1)
+    alive_map_next = np.zeros(1, dtype=np.int64)
+    arc_ptr, arc_succ, arc_y, arc_logp, log_b = [None] * K, [None] * K, [None] * K, [None] * K, [None] * (K + 1)
+    log_b[K] = log_b_next
+    stage_nodes = [0] * (K + 1)
+    stage_nodes[K] = 1
+    for k in range(K - 1, -1, -1):
+        ptr, succ, ys = fwd_ptr[k], fwd_succ[k], fwd_y[k]
+        new_succ = alive_map_next[succ]
+        succ_lb = np.where(new_succ >= 0, log_b_next[np.maximum(new_succ, 0)], -np.inf)
+        lb = _network.backward_stage(ptr, np.arange(succ.shape[0], dtype=np.int32), ys,
+                                     succ_lb, problem.log_binom[k])
+        alive = np.isfinite(lb)
+        owner = np.repeat(np.arange(ptr.shape[0] - 1), np.diff(ptr))
+        keep = alive[owner] & (new_succ >= 0)
+        alive_map = np.full(alive.shape[0], -1, dtype=np.int64)
+        alive_map[alive] = np.arange(int(alive.sum()))
+        kept_owner = alive_map[owner[keep]]
+        lb_alive = lb[alive]
+        ptr_new = np.zeros(lb_alive.shape[0] + 1, dtype=np.int64)
+        np.cumsum(np.bincount(kept_owner, minlength=lb_alive.shape[0]), out=ptr_new[1:])
+        succ_new = new_succ[keep].astype(np.int32)
+        y_new = ys[keep]
+        arc_ptr[k], arc_succ[k], arc_y[k] = ptr_new, succ_new, y_new
+        arc_logp[k] = problem.log_binom[k][y_new] + log_b_next[succ_new] - lb_alive[kept_owner]
+        log_b[k] = lb_alive
+        stage_nodes[k] = int(lb_alive.shape[0])
+        log_b_next, alive_map_next = lb_alive, alive_map
+    if stage_nodes[0] != 1:
+        raise AssertionError("mcexact internal error: the observed response is not in the network")
+    return NuisanceNetwork(problem, arc_ptr, arc_succ, arc_y, arc_logp, log_b, stage_nodes,
+                           seconds=time.perf_counter() - t0)
+
+
+def interest_ranges(net: NuisanceNetwork) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Least and greatest coded interest partial sums at every node of every stage."""
+    prob = net.problem
+    q = prob.interest.shape[1]
+    lo = np.zeros((1, q), dtype=np.int64)
+    hi = np.zeros((1, q), dtype=np.int64)
+    out = [(lo, hi)]
+    for k in range(prob.n_stages):
+        lo, hi = _network.minmax_stage(lo, hi, net.arc_ptr[k], net.arc_succ[k], net.arc_y[k],
+                                       prob.interest[k], net.stage_nodes[k + 1])
+        out.append((lo, hi))
+    return out
+
+
+@dataclass(frozen=True)
+class Plan:
+    """Sizes of the exact problem, measured or estimated before the full network is built.
+
+    Attributes
+    ----------
+    n_stages : int
+        Binomial groups processed (one stage each).
+    max_nodes : int
+        The node budget the plan was made for.
+    nuisance_nodes, nuisance_peak, nuisance_arcs : int or None
+        Nodes (in all, and in the largest stage) and arcs of the pruned nuisance network; None when
+        it exceeded the budget (then ``nuisance_reached`` holds how far it got).
+    full_peak_estimate, full_total_estimate : float or None
+        Upper-bound estimates of the full network's largest stage and of all its nodes: for every
+        nuisance node, the number of interest partial sums between the least and greatest reachable.
+    fits_full, fits_nuisance : bool
+        Whether the full and the nuisance network fit the budget (``fits_full`` compares the
+        estimate, which may be pessimistic).
+    interest_min, interest_max : ndarray or None
+        Exact range of every interest statistic given the nuisance statistics (user's integer scale).
+    reason : str
+        One sentence on the outcome.
+    """
+
+    n_stages: int
+    max_nodes: int
+    nuisance_nodes: int | None
+    nuisance_peak: int | None
+    nuisance_arcs: int | None
+    nuisance_reached: int | None
+    full_peak_estimate: float | None
+    full_total_estimate: float | None
+    fits_nuisance: bool
+    fits_full: bool
+    interest_min: np.ndarray | None
+    interest_max: np.ndarray | None
+    reason: str
+    seconds: float
+    _network: NuisanceNetwork | None = field(default=None, repr=False, compare=False)
+
+    def to_dict(self) -> dict:
+        """JSON-serialisable summary."""
+        out = {k: getattr(self, k) for k in (
+            "n_stages", "max_nodes", "nuisance_nodes", "nuisance_peak", "nuisance_arcs",
+            "nuisance_reached", "full_peak_estimate", "full_total_estimate", "fits_nuisance",
+            "fits_full", "reason", "seconds")}
+        for k in ("interest_min", "interest_max"):
+            v = getattr(self, k)
+            out[k] = None if v is None else [int(x) for x in v]
+        return out
+
+
+def plan(design, *, max_nodes: int | None = None, order=None) -> Plan:
+    """Measure the nuisance network and estimate the full network, without building the latter.
+
+    Parameters
+    ----------
+    design : mcexact.Design
+    max_nodes : int, optional
+        Node budget (default :data:`DEFAULT_MAX_NODES`); applies to all nodes of the nuisance
+        network and to any one stage of the full network.
+    order : permutation of the groups, optional
+        Processing order within strata (default: covariate-sorted).
+
+    Returns
+    -------
+    Plan
+    """
+    budget = _check_budget(max_nodes)
+    t0 = time.perf_counter()
+    problem = compile_design(design, order)
+    try:
+        net = build_nuisance_network(problem, budget)
+    except BudgetExceeded as exc:
+        return Plan(problem.n_stages, budget, None, None, None, exc.reached, None, None, False,
+                    False, None, None,
+                    f"the nuisance network exceeds the budget ({exc.reached:,} nodes or arcs "
+                    f"reached at stage {exc.stage})", time.perf_counter() - t0)
+    ranges = interest_ranges(net)
+    stage_sizes = np.array([float(np.prod((hi - lo + 1).astype(float), axis=1).sum())
+                            for lo, hi in ranges])
+    peak, total_est = float(stage_sizes.max()), float(stage_sizes.sum())
+    lo_final, hi_final = ranges[-1]
+    step, offset = problem.interest_step, problem.interest_offset
+    fits_full = peak <= budget
+    reason = (f"nuisance network of {net.n_nodes:,} nodes; full network estimated at most "
+              f"{peak:,.0f} nodes in its largest stage "
+              + ("(fits the budget)" if fits_full else f"(over the budget of {budget:,})"))
+    return Plan(problem.n_stages, budget, net.n_nodes, int(max(net.stage_nodes)), net.n_arcs,
+                None, peak, total_est, True, fits_full, lo_final[0] * step + offset,
+                hi_final[0] * step + offset, reason, time.perf_counter() - t0, _network=net)
+
+
+def exact_distribution(design, *, max_nodes: int | None = None, order=None,
+                       plan_result: Plan | None = None) -> ConditionalDistribution:
+    """Exact conditional distribution of the interest statistics given the nuisance statistics.
+
+    Implements the network (multivariate shift) recursion of Hirji, Mehta & Patel (1987), with
+    strata handled stage by stage as in Hirji, Mehta & Patel (1988): see ``mcexact/_network.pyx``.
+
+    Parameters
+    ----------
+    design : mcexact.Design
+    max_nodes : int, optional
+        Node budget (default :data:`DEFAULT_MAX_NODES`). The nuisance network may hold this many
+        nodes in all, and any single stage of the full network this many.
+    order : permutation of the groups, optional
+        Processing order within strata (default: covariate-sorted). The result does not depend on it.
+    plan_result : Plan, optional
+        A plan made for the same design and order, whose nuisance network is then reused.
+
+    Returns
+    -------
+    ConditionalDistribution
+        Support points T (user's integer scale), log counts ``log c(s, t)``, observed T.
+
+    Raises
+    ------
+    BudgetExceeded
+        When a network needs more nodes than `max_nodes` (the message says which network, where,
+        and which Monte Carlo method would fit).
+    """
+    budget = _check_budget(max_nodes)
+    t0 = time.perf_counter()
+    if plan_result is not None and plan_result._network is not None and order is None:
+        net = plan_result._network
+    else:
+        net = build_nuisance_network(compile_design(design, order), budget)
+    prob = net.problem
+    ranges = interest_ranges(net)
+    box_slots = [float(np.prod((hi - lo + 1).astype(float), axis=1).sum()) for lo, hi in ranges]
+    if max(box_slots) <= DENSE_SLOTS_PER_NODE * budget:
+        support_coded, log_p, total, peak = _full_dense(net, ranges)
+        layout = "dense"
+    else:
+        support_coded, log_p, total, peak = _full_hashed(net, budget)
+        layout = "hashed"
+    order_t = np.lexsort(support_coded.T[::-1])
+    support = support_coded[order_t] * prob.interest_step + prob.interest_offset
+    log_weights = log_p[order_t] + net.log_total
+    observed = np.asarray(design.observed_interest, dtype=np.int64)
+    info = {
+        "method": "exact",
+        "stages": prob.n_stages,
+        "nuisance_nodes": net.n_nodes,
+        "nuisance_arcs": net.n_arcs,
+        "full_nodes": int(total),
+        "full_peak": int(peak),
+        "max_nodes": budget,
+        "layout": layout,
+        "seconds": time.perf_counter() - t0,
+    }
+    return ConditionalDistribution(
+        support=support, log_weights=log_weights, observed=observed,
+        names=tuple(design.interest_names), scales=np.asarray(design.interest_scales, float),
+        info=info)
+
+
+def _strides(width: np.ndarray) -> np.ndarray:
+    """Mixed-radix strides of each row's box (first column fastest)."""
+    stride = np.ones_like(width)
+    if width.shape[1] > 1:
+        stride[:, 1:] = np.cumprod(width[:, :-1], axis=1)
+    return stride
+
+
+def _full_dense(net: NuisanceNetwork, ranges):
+    """Full network on direct-addressed blocks (``forward_dense_stage``)."""
+    prob = net.problem
+    lo, hi = ranges[0]
+    width = hi - lo + 1
+    offset = np.array([0, 1], dtype=np.int64)
+    log_p = np.zeros(1)
+    total = peak = 1
+    for k in range(prob.n_stages):
+        nlo, nhi = ranges[k + 1]
+        nwidth = nhi - nlo + 1
+        noffset = np.zeros(nwidth.shape[0] + 1, dtype=np.int64)
+        np.cumsum(np.prod(nwidth, axis=1), out=noffset[1:])
+        log_p = _network.forward_dense_stage(
+            log_p, offset, lo, width, noffset, nlo, _strides(nwidth), net.arc_ptr[k],
+            net.arc_succ[k], net.arc_y[k], net.arc_logp[k], prob.interest[k])
+        lo, width, offset = nlo, nwidth, noffset
+        live = int(np.count_nonzero(log_p > -np.inf))
+        total += live
+        peak = max(peak, live)
+    slots = np.flatnonzero(log_p > -np.inf)
+    digits = (slots[:, None] // _strides(width)[0]) % width[0]
+    return lo[0] + digits, log_p[slots], total, peak
+
+
+def _full_hashed(net: NuisanceNetwork, budget: int):
+    """Full network on hashed (node, packed v) keys (``forward_full_stage``)."""
+    prob = net.problem
+    v_size = prob.v_size
+    if max(net.stage_nodes) * v_size >= KEY_LIMIT:
+        raise BudgetExceeded(
+            "mcexact: the full network's keys would overflow (nuisance nodes times the range of "
+            "the interest statistics is too large); use a Monte Carlo method",
+            what="key_space", reached=min(max(net.stage_nodes) * v_size, 2**63 - 1), limit=KEY_LIMIT)
+    node = np.zeros(1, dtype=np.int64)
+    v = np.array([int(-prob.v_lo @ prob.v_stride)], dtype=np.int64)   # packed zero sums
+    log_p = np.zeros(1)
+    total = peak = 1
+    K = prob.n_stages
+    for k in range(K):
+        status, node, v, log_p = _network.forward_full_stage(
+            node, v, log_p, net.arc_ptr[k], net.arc_succ[k], net.arc_y[k], net.arc_logp[k],
+            prob.z_step(k), v_size, budget)
+        if status != _network.STATUS_OK:
+            _raise_budget("full", status, int(node), budget, k + 1, K)
+        peak = max(peak, node.shape[0])
+        total += node.shape[0]
+    coded = np.stack([(v // prob.v_stride[j]) % prob.v_radix[j] + prob.v_lo[j]
+                      for j in range(prob.v_radix.shape[0])], axis=1)
+    return coded, log_p, total, peak
