@@ -9,6 +9,8 @@ from mcexact._exceptions import BudgetExceeded, DataError, FileFormatError, Mcex
 from mcexact.design import Design
 from mcexact.distribution import ConditionalDistribution
 from mcexact.exact import DEFAULT_MAX_NODES, Plan, exact_distribution, plan
+from mcexact.fit import FitResult, fit
+from mcexact.demo import load_demo
 
 __version__ = "0.1.0.dev0"
 
@@ -22,5 +24,8 @@ __all__ = [
     "McexactError",
     "Plan",
     "exact_distribution",
+    "fit",
+    "FitResult",
+    "load_demo",
     "plan",
 ]

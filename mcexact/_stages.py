@@ -17,7 +17,7 @@ from math import gcd
 import numpy as np
 from scipy.special import gammaln
 
-from mcexact._exceptions import BudgetExceeded
+from mcexact._exceptions import BudgetExceeded, DataError
 
 # Packed keys are int64; staying below 2**62 leaves headroom for the multiply-add of an arc.
 KEY_LIMIT = 2**62
@@ -123,6 +123,19 @@ def _stage_order(stratum: np.ndarray, nuisance: np.ndarray, interest: np.ndarray
     return np.lexsort(keys)
 
 
+def _check_order(order, n_groups: int) -> np.ndarray:
+    """The processing order as an int64 array, or DataError if it is not a permutation."""
+    try:
+        arr = np.asarray(order)
+    except (TypeError, ValueError) as exc:
+        raise DataError(f"order must be a permutation of the {n_groups} groups") from exc
+    if (arr.ndim != 1 or arr.shape[0] != n_groups or not np.issubdtype(arr.dtype, np.integer)
+            or not np.array_equal(np.sort(arr), np.arange(n_groups))):
+        raise DataError(f"order must be a permutation of 0..{n_groups - 1} (one entry per "
+                        "collapsed group of the design)")
+    return arr.astype(np.int64)
+
+
 def compile_design(design, order: np.ndarray | None = None) -> StageProblem:
     """Recode a design and lay out its stages (see the module docstring).
 
@@ -144,7 +157,7 @@ def compile_design(design, order: np.ndarray | None = None) -> StageProblem:
     if order is None:
         order = _stage_order(stratum, W, Z)
     else:
-        order = np.asarray(order, dtype=np.int64)
+        order = _check_order(order, events.shape[0])
         order = order[np.argsort(stratum[order], kind="stable")]
     events, trials, stratum, W, Z = events[order], trials[order], stratum[order], W[order], Z[order]
     K = events.shape[0]

@@ -121,7 +121,10 @@ class ConditionalDistribution:
     # -- tilted moments ----------------------------------------------------------------------
     def log_pmf(self, beta=None) -> np.ndarray:
         """Log probabilities of the support points under the tilt ``beta`` (coded scale)."""
-        lw = self.log_weights + self.support @ self._beta(beta)
+        with np.errstate(over="ignore", invalid="ignore"):
+            lw = self.log_weights + self.support @ self._beta(beta)
+        if not np.all(np.isfinite(lw)):
+            raise DataError("beta is too large: the tilted weights overflow")
         return lw - logsumexp(lw)
 
     def pmf(self, beta=None) -> np.ndarray:
@@ -171,7 +174,12 @@ class ConditionalDistribution:
         """
         if isinstance(fixed, Mapping):
             cols = self._columns(list(fixed))
-            values = [int(v) for v in fixed.values()]
+            values = []
+            for name, v in fixed.items():
+                if isinstance(v, bool) or not float(v).is_integer():
+                    raise DataError(f"the value for {name!r} must be an integer statistic "
+                                    f"(support points are integers), got {v!r}")
+                values.append(int(v))
         else:
             cols = self._columns(list(fixed))
             values = [int(self.observed[c]) for c in cols]
@@ -215,6 +223,9 @@ class ConditionalDistribution:
                          observed=self.observed, scales=self.scales, header=np.array(header))
                 fh.flush()
                 os.fsync(fh.fileno())
+            umask = os.umask(0)
+            os.umask(umask)
+            os.chmod(tmp, 0o666 & ~umask)      # mkstemp creates 0600; give the usual mode
             os.replace(tmp, path)
         except BaseException:
             if os.path.exists(tmp):
@@ -224,25 +235,33 @@ class ConditionalDistribution:
     @classmethod
     def load(cls, path: str | os.PathLike) -> "ConditionalDistribution":
         """Read a distribution written by :meth:`save`."""
+        name = repr(os.fspath(path))
         try:
-            with np.load(path, allow_pickle=False) as data:
-                header = json.loads(str(data["header"]))
-                arrays = {k: data[k] for k in ("support", "log_weights", "observed", "scales")}
+            data = np.load(path, allow_pickle=False)
         except FileNotFoundError:
             raise
-        except (OSError, ValueError, KeyError, json.JSONDecodeError) as exc:
-            raise FileFormatError(f"{os.fspath(path)!r} is not a saved mcexact distribution "
-                                  f"({exc})") from exc
+        except Exception as exc:       # numpy raises many kinds for a foreign or damaged file
+            raise FileFormatError(f"{name} is not a saved mcexact distribution ({exc})") from exc
+        if not isinstance(data, np.lib.npyio.NpzFile):
+            raise FileFormatError(f"{name} is not a saved mcexact distribution (not an archive)")
+        try:
+            with data:
+                header = json.loads(str(data["header"]))
+                arrays = {k: data[k] for k in ("support", "log_weights", "observed", "scales")}
+        except Exception as exc:
+            raise FileFormatError(f"{name} is not a saved mcexact distribution ({exc})") from exc
+        if not isinstance(header, dict):
+            raise FileFormatError(f"{name} is not a saved mcexact distribution (bad header)")
         if header.get("format") != FILE_FORMAT:
-            raise FileFormatError(f"{os.fspath(path)!r} is not a saved mcexact distribution")
+            raise FileFormatError(f"{name} is not a saved mcexact distribution")
         if header.get("version") != FILE_VERSION:
-            raise FileFormatError(f"{os.fspath(path)!r} has format version "
+            raise FileFormatError(f"{name} has format version "
                                   f"{header.get('version')!r}; this mcexact reads version "
                                   f"{FILE_VERSION}")
         try:
             return cls(names=tuple(header["names"]), info=header.get("info", {}), **arrays)
-        except (DataError, KeyError) as exc:
-            raise FileFormatError(f"{os.fspath(path)!r} is damaged: {exc}") from exc
+        except (DataError, KeyError, TypeError, ValueError) as exc:
+            raise FileFormatError(f"{name} is damaged: {exc}") from exc
 
 
 def _jsonable(obj):

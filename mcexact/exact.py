@@ -8,6 +8,7 @@ orchestrates the stages, and turns status codes into exceptions.
 
 from __future__ import annotations
 
+import hashlib
 import time
 from dataclasses import dataclass, field
 
@@ -32,6 +33,17 @@ DENSE_SLOTS_PER_NODE = 5
 
 # Arcs of the nuisance network are kept for the forward pass (16 bytes each); allow a few per node.
 ARCS_PER_NODE = 8
+
+
+def design_key(design) -> str:
+    """Fingerprint of the arrays that define a design's exact problem."""
+    h = hashlib.sha256()
+    for arr in (design.events, design.trials, design.stratum, design.interest, design.nuisance):
+        a = np.ascontiguousarray(arr, dtype=np.int64)
+        h.update(str(a.shape).encode())
+        h.update(a.tobytes())
+    h.update(b"fixed" if design.fix_stratum_totals else b"free")
+    return h.hexdigest()
 
 
 def _check_budget(max_nodes) -> int:
@@ -216,6 +228,7 @@ class Plan:
     reason: str
     seconds: float
     _network: NuisanceNetwork | None = field(default=None, repr=False, compare=False)
+    _design_key: str = field(default="", repr=False, compare=False)
 
     def to_dict(self) -> dict:
         """JSON-serialisable summary."""
@@ -247,14 +260,16 @@ def plan(design, *, max_nodes: int | None = None, order=None) -> Plan:
     """
     budget = _check_budget(max_nodes)
     t0 = time.perf_counter()
-    problem = compile_design(design, order)
+    key = design_key(design)
     try:
+        problem = compile_design(design, order)
         net = build_nuisance_network(problem, budget)
     except BudgetExceeded as exc:
-        return Plan(problem.n_stages, budget, None, None, None, exc.reached, None, None, False,
-                    False, None, None,
-                    f"the nuisance network exceeds the budget ({exc.reached:,} nodes or arcs "
-                    f"reached at stage {exc.stage})", time.perf_counter() - t0)
+        where = f" at stage {exc.stage}" if exc.stage is not None else ""
+        return Plan(int(design.n_groups), budget, None, None, None, exc.reached, None, None,
+                    False, False, None, None,
+                    f"the nuisance network exceeds the budget ({exc.reached:,} nodes, arcs or "
+                    f"key values reached{where})", time.perf_counter() - t0, _design_key=key)
     ranges = interest_ranges(net)
     stage_sizes = np.array([float(np.prod((hi - lo + 1).astype(float), axis=1).sum())
                             for lo, hi in ranges])
@@ -267,7 +282,8 @@ def plan(design, *, max_nodes: int | None = None, order=None) -> Plan:
               + ("(fits the budget)" if fits_full else f"(over the budget of {budget:,})"))
     return Plan(problem.n_stages, budget, net.n_nodes, int(max(net.stage_nodes)), net.n_arcs,
                 None, peak, total_est, True, fits_full, lo_final[0] * step + offset,
-                hi_final[0] * step + offset, reason, time.perf_counter() - t0, _network=net)
+                hi_final[0] * step + offset, reason, time.perf_counter() - t0, _network=net,
+                _design_key=key)
 
 
 def exact_distribution(design, *, max_nodes: int | None = None, order=None,
@@ -301,6 +317,8 @@ def exact_distribution(design, *, max_nodes: int | None = None, order=None,
     """
     budget = _check_budget(max_nodes)
     t0 = time.perf_counter()
+    if plan_result is not None and plan_result._design_key != design_key(design):
+        raise DataError("plan_result was made for another design")
     if plan_result is not None and plan_result._network is not None and order is None:
         net = plan_result._network
     else:

@@ -1,0 +1,111 @@
+"""Plain-text report of a :class:`~mcexact.fit.FitResult`."""
+
+from __future__ import annotations
+
+import textwrap
+
+import numpy as np
+import pandas as pd
+
+__all__ = ["text_report", "format_number"]
+
+_WIDTH = 96
+
+
+def format_number(x, digits: int = 4) -> str:
+    """Compact number: significant digits, ``inf`` spelled out, missing as ``-``."""
+    if x is None or (isinstance(x, float) and np.isnan(x)):
+        return "-"
+    if isinstance(x, (bool, np.bool_)):
+        return "yes" if x else "no"
+    if isinstance(x, (int, np.integer)):
+        return f"{int(x):,}"
+    x = float(x)
+    if np.isinf(x):
+        return "+inf" if x > 0 else "-inf"
+    if x != 0 and (abs(x) < 1e-4 or abs(x) >= 1e6):
+        return f"{x:.{digits - 1}e}"
+    return f"{x:.{digits}g}"
+
+
+def _table(frame: pd.DataFrame, columns: dict) -> str:
+    """Render selected columns of `frame` under new headings, numbers formatted."""
+    shown = pd.DataFrame({head: [format_number(v) if not isinstance(v, str) else v
+                                 for v in frame[col]] for col, head in columns.items()})
+    return textwrap.indent(shown.to_string(index=False), "  ")
+
+
+def _wrap(text: str, indent: str = "  ") -> str:
+    return textwrap.fill(text, width=_WIDTH, initial_indent=indent, subsequent_indent=indent)
+
+
+def text_report(result) -> str:
+    """The report printed by ``FitResult.summary()`` and the command line."""
+    from mcexact.fit import CAUTION
+
+    d = result.design
+    level = f"{100 * (1 - result.alpha):g}%"
+    lines = ["mcexact: exact conditional logistic regression", "=" * 46]
+    strata = (f"{d.n_strata} strata ({d.strata_name})" if d.strata_name else "no strata")
+    lines.append(f"Data       {d.n_rows:,} rows in {d.n_groups:,} covariate groups, {strata}; "
+                 f"{d.n_dropped_strata} uninformative strata dropped ({d.n_dropped_rows} rows)")
+    total_events = int(np.sum(d.events))
+    total_trials = int(np.sum(d.trials))
+    lines.append(f"Response   {d.response_name}: {total_events:,} events in {total_trials:,} trials")
+    lines.append(f"Interest   {', '.join(d.effects)}")
+    nuisance = list(d.nuisance_names)
+    if d.strata_name:
+        nuisance.append(f"one intercept per stratum of {d.strata_name}")
+    elif d.fix_stratum_totals:
+        nuisance.append("intercept")
+    lines.append(f"Nuisance   {', '.join(nuisance) if nuisance else 'none'}")
+    plans = result.method.get("plans", {})
+    joint_plan = plans.get("joint") or {}
+    lines.append(f"Engine     {result.method['description']}; {result.method['reason']}")
+    if joint_plan.get("nuisance_nodes") is not None:
+        lines.append(f"           joint network: {joint_plan['nuisance_nodes']:,} nuisance nodes, "
+                     f"largest stage at most {joint_plan['full_peak_estimate']:,.0f} nodes")
+
+    lines += ["", "Conditional tests of no effect (p-values from the conditional distribution)"]
+    lines.append(_table(result.tests, {"effect": "effect", "test": "test",
+                                       "statistic": "statistic", "p_value": "p-value",
+                                       "mid_p_value": "mid-p", "df": "df",
+                                       "n_points": "support"}))
+
+    lines += ["", f"Estimates per original unit, exact {level} limits"]
+    lines.append(_table(result.estimates, {
+        "term": "term", "estimate": "estimate", "kind": "kind", "ci_lower": "lower",
+        "ci_upper": "upper", "odds_ratio": "odds ratio", "or_ci_lower": "OR lower",
+        "or_ci_upper": "OR upper"}))
+    lines.append("")
+    lines.append(_table(result.estimates, {
+        "term": "term", "observed": "observed T", "p_lower": "P(T<=t)", "p_upper": "P(T>=t)",
+        "p_value": "two-sided (doubled)", "mid_p_value": "mid-p two-sided"}))
+    for _, row in result.estimates.iterrows():
+        if row["note"]:
+            lines.append(_wrap(f"{row['term']}: {row['note']}"))
+    if result.joint_estimate is not None and len(result.joint_estimate) > 1:
+        lines.append("  joint conditional MLE: " + ", ".join(
+            f"{k} = {format_number(v)}" for k, v in result.joint_estimate.items()))
+
+    a = result.asymptotic
+    if a is not None:
+        lines += ["", "Ordinary (large-sample) logistic regression, for comparison"]
+        lines.append(_table(a.coefficients, {"term": "term", "estimate": "estimate",
+                                             "std_error": "std. error", "odds_ratio": "odds ratio",
+                                             "wald_p_value": "Wald p"}))
+        lines.append(_table(a.tests, {"effect": "effect", "df": "df", "wald_p_value": "Wald p",
+                                      "lr_p_value": "LR p", "score_p_value": "score p"}))
+        lines.append(f"  separation check: {a.separation.status}"
+                     + (f" (no finite estimate: {', '.join(a.separation.columns)})"
+                        if a.separation.separated else ""))
+        lines.append(f"  expected counts below 5: {a.share_small_expected:.0%}"
+                     + (" - too sparse for large-sample results" if a.sparse else ""))
+        for note in a.notes:
+            lines.append(_wrap("note: " + note))
+
+    if result.notes:
+        lines += ["", "Notes"]
+        lines += [_wrap("- " + n) for n in result.notes]
+    lines += ["", "Caution", _wrap(CAUTION)]
+    return "\n".join(lines)
