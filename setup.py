@@ -14,6 +14,13 @@ extensions = [
         extra_compile_args=COMPILE_ARGS,
         define_macros=[("NPY_NO_DEPRECATED_API", "NPY_1_7_API_VERSION")],
     ),
+    Extension(
+        "mcexact._sampler",
+        ["mcexact/_sampler.pyx"],
+        include_dirs=[np.get_include()],
+        extra_compile_args=COMPILE_ARGS,
+        define_macros=[("NPY_NO_DEPRECATED_API", "NPY_1_7_API_VERSION")],
+    ),
 ]
 
 setup(

@@ -98,7 +98,7 @@ def stratified_design(n_strata: int, rows_per_stratum: int) -> RawDesign:
 
 
 def growth_design(n: int) -> RawDesign:
-    """First ``n`` rows of a pool: intercept, nuisance and interest in 0..9, events with p = 0.2."""
+    """First ``n`` rows of a pool: intercept, nuisance and interest in 0..9, events at p = 0.2."""
     rng = _rng(_GROWTH)
     nuisance = rng.integers(0, 10, size=_POOL_ROWS)[:n]
     interest = rng.integers(0, 10, size=_POOL_ROWS)[:n]
@@ -107,7 +107,7 @@ def growth_design(n: int) -> RawDesign:
 
 
 def sparse_interest_design(n: int) -> RawDesign:
-    """Like :func:`growth_design`, but the interest column is ``a + 100000 b`` (a in 0..9, b in 0/1).
+    """Like :func:`growth_design`, but interest is ``a + 100000 b`` (a in 0..9, b in 0/1).
 
     Its partial sums fall in two far-apart bands, so the box of interest values between the least
     and greatest reachable at a nuisance node is mostly empty: the enumerator then takes its

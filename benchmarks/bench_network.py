@@ -1,7 +1,7 @@
 """Speed and memory of the network enumerator, ``mcexact.exact_distribution``.
 
-Run ``python benchmarks/bench_network.py`` (about 5-10 minutes on 2 cores) or add ``--quick``
-(about a minute).  Three tables:
+Run ``python benchmarks/bench_network.py`` (about 5 minutes on 2 cores) or add ``--quick``
+(under a minute).  Three tables:
 
 1. **Enumeration vs brute force.**  Binary designs of 16-22 rows.  Brute force enumerates all
    ``2**n`` response vectors with NumPy: the sufficient statistics of every vector are the sum of
@@ -341,6 +341,28 @@ def _next_size(n: int, growth: float, step: int) -> int:
 _DEFAULT_EXPONENT = 6.0
 
 
+def _predicted_seconds(runs, planned, n: int, from_plan: bool) -> float | None:
+    """Predicted time of a run of size `n`, from the runs so far (None before the first)."""
+    if not runs:
+        return None
+    last = runs[-1]
+    if from_plan:
+        return last["full_seconds"] * planned.full_total_estimate / last["box_total"]
+    exponent = _DEFAULT_EXPONENT
+    if len(runs) >= 2:
+        before = runs[-2]
+        exponent = (math.log(last["full_seconds"] / before["full_seconds"])
+                    / math.log(last["n"] / before["n"]))
+    return last["full_seconds"] * (n / last["n"]) ** exponent
+
+
+def _run_size(family: str, n: int, planned, time_limit: float) -> dict:
+    run = _run_worker(family, n, timeout=2 * time_limit + 30)
+    if "error" not in run:
+        run["box_total"] = planned.full_total_estimate
+    return run
+
+
 def grow_family(family: str, start: int, growth: float, step: int, time_limit: float, *,
                 stop_on_plan: bool):
     """Run growing sizes until the next run is predicted to exceed the limit (or fails).
@@ -358,24 +380,12 @@ def grow_family(family: str, start: int, growth: float, step: int, time_limit: f
         planned = mcexact.plan(_FAMILIES[family](n).design())
         if stop_on_plan and not planned.fits_full:
             return runs, "plan(...).fits_full is False", n, planned
-        predicted = None
-        if runs and stop_on_plan:
-            last = runs[-1]
-            predicted = last["full_seconds"] * planned.full_total_estimate / last["box_total"]
-        elif runs:
-            last = runs[-1]
-            exponent = _DEFAULT_EXPONENT
-            if len(runs) >= 2:
-                before = runs[-2]
-                exponent = (math.log(last["full_seconds"] / before["full_seconds"])
-                            / math.log(last["n"] / before["n"]))
-            predicted = last["full_seconds"] * (n / last["n"]) ** exponent
+        predicted = _predicted_seconds(runs, planned, n, stop_on_plan)
         if predicted is not None and predicted > time_limit:
             return runs, f"predicted {predicted:.0f} s > limit {time_limit:.0f} s", n, planned
-        run = _run_worker(family, n, timeout=2 * time_limit + 30)
+        run = _run_size(family, n, planned, time_limit)
         if "error" in run:
             return runs, run["error"], n, planned
-        run["box_total"] = planned.full_total_estimate
         runs.append(run)
         n = _next_size(n, growth, step)
 
@@ -409,9 +419,11 @@ def _report_memory(run: dict) -> None:
     print(f"  largest run: n={run['n']} ({run['groups']} groups, {run['events']} events): "
           f"nuisance {run['nuisance_nodes']:,} nodes / {run['nuisance_arcs']:,} arcs, "
           f"full peak {run['full_peak']:,}, full total {run['full_nodes']:,} nodes")
-    print(f"    plan {run['plan_seconds']:.2f} s + full pass {run['full_seconds']:.2f} s; peak RSS "
-          f"{run['peak_kb'] / 1024:.0f} MB (after import and design {run['rss_start_kb'] / 1024:.0f}"
-          f" MB, after plan {run['rss_plan_kb'] / 1024:.0f} MB)")
+    mb = {k: run[k] / 1024 for k in ("peak_kb", "rss_start_kb", "rss_plan_kb")}
+    print(f"    plan {run['plan_seconds']:.2f} s + full pass {run['full_seconds']:.2f} s; peak RSS"
+          f" "
+          f"{mb['peak_kb']:.0f} MB (after import and design {mb['rss_start_kb']:.0f} MB, "
+          f"after plan {mb['rss_plan_kb']:.0f} MB)")
     if not run["peak_reset"] and run["peak_full_kb"] <= run["peak_plan_kb"]:
         print("    (peak RSS could not be reset after plan() and the full pass did not raise it: "
               "B/node is a lower bound)")
@@ -434,29 +446,48 @@ def table_largest(quick: bool) -> None:
           "minus RSS after plan();")
     print("  B/node = 'full pass' bytes over the full peak (live nodes of the largest stage)")
     runs, reason, n_stop, planned = grow_family("growth", 100, 1.3, 50, limit, stop_on_plan=True)
-    _print_runs(runs)
+    stopped_on_plan = not planned.fits_full
     peak_text = ("" if planned.full_peak_estimate is None
                  else f" (planned full peak {planned.full_peak_estimate:,.0f} nodes)")
-    print(f"  stopped at n={n_stop}: {reason}{peak_text}")
-    if runs:
-        _report_memory(runs[-1])
-    if runs and not quick:
-        fits, fails = runs[-1]["n"], n_stop
-        if planned.fits_full:                 # stopped on time: find where the plan stops fitting
-            while mcexact.plan(growth_design(fails).design()).fits_full:
-                fits, fails = fails, _next_size(fails, 1.3, 50)
+    notes = [f"  growth stopped at n={n_stop}: {reason}{peak_text}"]
+    if runs and stopped_on_plan:
+        # The last size run may be well below the budget: bisect on plans for the largest size
+        # that fits, and run it too if the time limit allows.
+        largest = largest_fitting_size("growth", runs[-1]["n"], n_stop, 10)
+        if largest > runs[-1]["n"]:
+            p = mcexact.plan(growth_design(largest).design())
+            predicted = _predicted_seconds(runs, p, largest, True)
+            if predicted <= limit:
+                run = _run_size("growth", largest, p, limit)
+                if "error" in run:
+                    notes.append(f"  largest fitting size n={largest}: {run['error']}")
+                else:
+                    runs.append(run)
+                    notes.append(f"  then ran n={largest}, the largest size whose plan fits "
+                                 "(bisection on plans, to within 10 rows)")
+            else:
+                notes.append(f"  largest size whose plan fits: n={largest}, not run (predicted "
+                             f"{predicted:.0f} s > limit {limit:.0f} s)")
+    _print_runs(runs)
+    print("\n".join(notes))
+    if runs and not quick and not stopped_on_plan:
+        fits, fails = runs[-1]["n"], n_stop   # stopped on time: where does the plan stop fitting?
+        while mcexact.plan(growth_design(fails).design()).fits_full:
+            fits, fails = fails, _next_size(fails, 1.3, 50)
         largest = largest_fitting_size("growth", fits, fails, 10)
         p = mcexact.plan(growth_design(largest).design())
-        print(f"  largest n with plan(...).fits_full (plans only, to within 10 rows): n={largest}, "
+        print(f"  largest n with plan(...).fits_full (plans only, within 10 rows): n={largest}, "
               f"planned full peak {p.full_peak_estimate:,.0f}, planned full total "
               f"{p.full_total_estimate:,.0f} nodes")
+    if runs:
+        _report_memory(runs[-1])
     print()
 
     sparse_limit = 5.0 if quick else 90.0
-    print("Table 3b. Hashed layout: as table 3 but the interest column is a + 100000 b (a in 0..9,")
-    print("  b in 0/1), so the interest boxes are mostly empty and the enumerator hashes its nodes;")
-    print(f"  the plan's (box) estimate is far too pessimistic here, so runs go on regardless of "
-          f"fits_full; time limit {sparse_limit:.0f} s per run")
+    print("Table 3b. Hashed layout: as table 3 but the interest column is a + 100000 b")
+    print("  (a in 0..9, b in 0/1). The interest boxes are mostly empty, so the enumerator hashes")
+    print("  its nodes and the plan's box estimate is far too pessimistic: runs go on regardless")
+    print(f"  of fits_full; time limit {sparse_limit:.0f} s per run")
     runs, reason, n_stop, _ = grow_family("sparse", 100, 1.4, 20, sparse_limit, stop_on_plan=False)
     _print_runs(runs)
     print(f"  stopped at n={n_stop}: {reason}")

@@ -136,17 +136,30 @@ def _check_order(order, n_groups: int) -> np.ndarray:
     return arr.astype(np.int64)
 
 
-def compile_design(design, order: np.ndarray | None = None) -> StageProblem:
-    """Recode a design and lay out its stages (see the module docstring).
+@dataclass(frozen=True)
+class Recoded:
+    """A design's groups in processing order, with covariates shifted and divided (see module).
 
-    Parameters
-    ----------
-    design : mcexact.Design
-    order : permutation of the design's groups, optional
-        Processing order within strata (groups are always grouped by stratum first). Default: the
-        covariate-sorted order of :func:`_stage_order`. Exposed so tests can check that the
-        distribution does not depend on it.
+    ``t_user = step * t_coded + offset`` maps coded interest statistics back to the user's scale.
     """
+
+    events: np.ndarray
+    trials: np.ndarray
+    stratum: np.ndarray
+    nuisance: np.ndarray
+    interest: np.ndarray
+    fixed: bool
+    starts: np.ndarray
+    ends: np.ndarray
+    n_events: np.ndarray
+    step: np.ndarray
+    offset: np.ndarray
+    order: np.ndarray
+
+
+def recode(design, order: np.ndarray | None = None) -> Recoded:
+    """Order a design's groups by stratum (and within strata by `order` or covariate value) and
+    recode its covariates; shared by the network engines and the Markov chains."""
     events = np.asarray(design.events, dtype=np.int64)
     trials = np.asarray(design.trials, dtype=np.int64)
     stratum = np.asarray(design.stratum, dtype=np.int64)
@@ -186,6 +199,26 @@ def compile_design(design, order: np.ndarray | None = None) -> StageProblem:
     z_gcd = np.array([max(_column_gcd(Z[:, j]), 1) for j in range(Z.shape[1])], dtype=np.int64)
     Z //= z_gcd
 
+    return Recoded(events, trials, stratum, np.ascontiguousarray(W), np.ascontiguousarray(Z),
+                   fixed, starts, ends, n_events, z_gcd, z_offset, order)
+
+
+def compile_design(design, order: np.ndarray | None = None) -> StageProblem:
+    """Recode a design and lay out its stages (see the module docstring).
+
+    Parameters
+    ----------
+    design : mcexact.Design
+    order : permutation of the design's groups, optional
+        Processing order within strata (groups are always grouped by stratum first). Default: the
+        covariate-sorted order of :func:`_stage_order`. Exposed so tests can check that the
+        distribution does not depend on it.
+    """
+    rc = recode(design, order)
+    events, trials, stratum, W, Z = rc.events, rc.trials, rc.stratum, rc.nuisance, rc.interest
+    fixed, starts, ends, n_events = rc.fixed, rc.starts, rc.ends, rc.n_events
+    z_gcd, z_offset, order = rc.step, rc.offset, rc.order
+    K = events.shape[0]
     s = W.T @ events
     observed = Z.T @ events
     p, q = W.shape[1], Z.shape[1]

@@ -54,6 +54,18 @@ class ConditionalDistribution:
         ``beta * scales`` per original unit.
     info : dict
         How the distribution was computed (method, network sizes, time, ...).
+    chain_index : tuple of ndarray or None
+        For a Monte Carlo distribution: per chain, the support row of every draw, in order (so
+        Monte Carlo errors can be computed); None for an exact distribution. Its weights are then
+        log relative frequencies (plus the log total count when the engine knows it), and a
+        support point of weight zero (log weight -inf) may stand for the observed value.
+    iid : bool
+        Whether the draws are independent (direct sampling) rather than Markov chains.
+    support_min, support_max : ndarray or None
+        Exact range of each statistic when an engine knows it beyond the points drawn.
+    null_mean, null_cov : ndarray or None
+        Exact null mean and covariance of T when an engine knows them (used by the score test in
+        place of moments estimated from the draws).
     """
 
     support: np.ndarray
@@ -62,6 +74,12 @@ class ConditionalDistribution:
     names: tuple
     scales: np.ndarray
     info: dict = field(default_factory=dict)
+    chain_index: tuple | None = None
+    iid: bool = True
+    support_min: np.ndarray | None = None
+    support_max: np.ndarray | None = None
+    null_mean: np.ndarray | None = None
+    null_cov: np.ndarray | None = None
 
     def __post_init__(self):
         support = np.asarray(self.support, dtype=np.int64)
@@ -84,6 +102,23 @@ class ConditionalDistribution:
         object.__setattr__(self, "scales", scales)
         object.__setattr__(self, "names", names)
         object.__setattr__(self, "info", dict(self.info))
+        if self.chain_index is not None:
+            object.__setattr__(self, "chain_index", tuple(
+                np.asarray(c, dtype=np.int64).reshape(-1) for c in self.chain_index))
+        for name in ("support_min", "support_max"):
+            v = getattr(self, name)
+            if v is not None:
+                object.__setattr__(self, name, np.asarray(v, dtype=np.int64).reshape(-1))
+
+    @property
+    def is_monte_carlo(self) -> bool:
+        """Whether the distribution was estimated from draws."""
+        return self.chain_index is not None
+
+    @property
+    def n_draws(self) -> int:
+        """Number of draws behind a Monte Carlo distribution (0 when exact)."""
+        return 0 if self.chain_index is None else int(sum(c.shape[0] for c in self.chain_index))
 
     # -- basic shape -------------------------------------------------------------------------
     @property
@@ -123,7 +158,7 @@ class ConditionalDistribution:
         """Log probabilities of the support points under the tilt ``beta`` (coded scale)."""
         with np.errstate(over="ignore", invalid="ignore"):
             lw = self.log_weights + self.support @ self._beta(beta)
-        if not np.all(np.isfinite(lw)):
+        if np.any(np.isnan(lw) | (lw == np.inf)):
             raise DataError("beta is too large: the tilted weights overflow")
         return lw - logsumexp(lw)
 
@@ -193,10 +228,16 @@ class ConditionalDistribution:
             raise DataError(f"no support point has {dict(zip([self.names[c] for c in cols], values))}")
         info = dict(self.info)
         info["conditioned_on"] = {self.names[c]: v for c, v in zip(cols, values)}
+        chain_index = None
+        if self.chain_index is not None:
+            # Keep the draws that fall on the slice, renumbered to the slice's rows.
+            new_row = np.full(self.n_points, -1, dtype=np.int64)
+            new_row[mask] = np.arange(int(mask.sum()))
+            chain_index = tuple(new_row[c][new_row[c] >= 0] for c in self.chain_index)
         return ConditionalDistribution(
             support=self.support[mask][:, keep], log_weights=self.log_weights[mask],
             observed=self.observed[keep], names=tuple(self.names[j] for j in keep),
-            scales=self.scales[keep], info=info)
+            scales=self.scales[keep], info=info, chain_index=chain_index, iid=self.iid)
 
     # -- export ------------------------------------------------------------------------------
     def to_frame(self, beta=None) -> pd.DataFrame:

@@ -21,11 +21,19 @@ from mcexact.design import Design
 from mcexact.distribution import ConditionalDistribution
 from mcexact.exact import exact_distribution, plan
 from mcexact.inference import column_inference, joint_cmle, joint_tests
+from mcexact.montecarlo import (SamplerOptions, draw_direct, draw_mcmc, mcse_of_indicator,
+                                spawn_seeds)
 
 __all__ = ["fit", "FitResult", "METHODS", "CAUTION"]
 
-#: Engines `fit` accepts. Monte Carlo engines join this set when they exist.
-METHODS = ("auto", "enumerate")
+#: Engines `fit` accepts.
+METHODS = ("auto", "enumerate", "direct", "mcmc")
+
+ENGINE_DESCRIPTIONS = {
+    "exact": "exact enumeration by the network algorithm (Hirji, Mehta & Patel 1987)",
+    "direct": "independent draws through the nuisance network (Mehta, Patel & Senchaudhuri 2000)",
+    "mcmc": "Markov chains with the nuisance statistics fixed (swap or exact block moves)",
+}
 
 CAUTION = (
     "Exact conditional results can be conservative, and conditioning on many nuisance terms "
@@ -33,10 +41,12 @@ CAUTION = (
     "shown. These results support, and do not replace, the study protocol, a qualified "
     "statistician and applicable regulatory guidance.")
 
-_TEST_COLUMNS = ["effect", "test", "statistic", "p_value", "mid_p_value", "df", "n_points", "note"]
+_TEST_COLUMNS = ["effect", "test", "statistic", "p_value", "mid_p_value", "df", "n_points",
+                 "engine", "mcse", "mcse_mid_p", "n_draws", "note"]
 _ESTIMATE_COLUMNS = ["term", "effect", "estimate", "kind", "ci_lower", "ci_upper", "odds_ratio",
                      "or_ci_lower", "or_ci_upper", "p_value", "mid_p_value", "p_lower", "p_upper",
-                     "cmle", "median_unbiased", "observed", "n_points", "note"]
+                     "cmle", "median_unbiased", "observed", "n_points", "engine", "mcse",
+                     "mcse_ci_lower", "mcse_ci_upper", "mcse_p_value", "n_draws", "note"]
 
 
 @dataclass
@@ -150,20 +160,169 @@ def _check_options(method, alpha):
         raise DataError(f"alpha must be a number strictly between 0 and 1; got {alpha!r}")
 
 
-def _exact(design: Design, max_nodes, what: str):
-    """Plan, then enumerate; returns (distribution or None, plan, note)."""
+def _conditional(design: Design, method: str, max_nodes, options: SamplerOptions, seed, what):
+    """The conditional distribution of `design`'s interest statistics by the engine `method`
+    selects, with a record of the engine and the reason."""
     p = plan(design, max_nodes=max_nodes)
-    if not p.fits_nuisance or not p.fits_full:
-        return None, p, f"{what}: {p.reason}"
-    try:
-        return exact_distribution(design, max_nodes=max_nodes, plan_result=p), p, ""
-    except BudgetExceeded as exc:
-        return None, p, f"{what}: {exc}"
+    info = {"plan": p.to_dict()}
+    engine = method
+    if method == "auto":
+        engine = "exact" if p.fits_full else "direct" if p.fits_nuisance else "mcmc"
+        info["reason"] = {
+            "exact": "the full network fits the node budget",
+            "direct": "the full network is over the node budget but the nuisance network fits, "
+                      "so independent draws are possible",
+            "mcmc": "even the nuisance network is over the node budget, so Markov chains are used",
+        }[engine]
+    else:
+        engine = "exact" if method == "enumerate" else method
+        info["reason"] = "requested"
+    if engine == "exact":
+        if not p.fits_full:
+            raise BudgetExceeded(f"mcexact: exact enumeration of {what} does not fit: {p.reason}; "
+                                 "use method='auto', 'direct' or 'mcmc'", what="full",
+                                 reached=int(p.full_peak_estimate or p.nuisance_reached or 0),
+                                 limit=p.max_nodes)
+        try:
+            dist = exact_distribution(design, max_nodes=max_nodes, plan_result=p)
+        except BudgetExceeded:
+            if method != "auto":
+                raise
+            engine = "direct"
+            info["reason"] = "the full network exceeded the budget while being built"
+    if engine == "direct":
+        if not p.fits_nuisance:
+            raise BudgetExceeded(f"mcexact: direct sampling of {what} needs the nuisance network, "
+                                 f"which does not fit: {p.reason}; use method='mcmc'",
+                                 what="nuisance", reached=int(p.nuisance_reached or 0),
+                                 limit=p.max_nodes)
+        sample = draw_direct(p._network, design, options, seed.spawn(options.n_chains))
+        dist = sample.to_distribution()
+        info["seconds"] = sample.seconds
+    elif engine == "mcmc":
+        sample = draw_mcmc(design, options, seed.spawn(options.n_chains))
+        dist = sample.to_distribution()
+        moves = sum(int(c[0]) for c in sample.counters)
+        info.update(seconds=sample.seconds, move=sample.info["move"],
+                    block_size=sample.info["block_size"],
+                    changed_share=sum(int(c[1]) for c in sample.counters) / max(moves, 1),
+                    skipped_share=sum(int(c[2]) for c in sample.counters) / max(moves, 1))
+    info["engine"] = engine
+    if dist.is_monte_carlo:
+        info["n_draws"] = dist.n_draws
+    return dist, info
+
+
+def _batches(dist: ConditionalDistribution, n_batches: int = 10):
+    """The draws of a Monte Carlo distribution cut into `n_batches` batches (the same share of
+    every chain in each), each as a distribution over the same support."""
+    out = []
+    for b in range(n_batches):
+        counts = np.zeros(dist.n_points)
+        for idx in dist.chain_index:
+            n = idx.shape[0]
+            part = idx[b * n // n_batches:(b + 1) * n // n_batches]
+            counts += np.bincount(part, minlength=dist.n_points)
+        if counts.sum() == 0:
+            continue
+        with np.errstate(divide="ignore"):
+            lw = np.log(counts)
+        out.append(ConditionalDistribution(dist.support, lw, dist.observed, dist.names,
+                                           dist.scales, null_mean=dist.null_mean,
+                                           null_cov=dist.null_cov))
+    return out
+
+
+def _batch_mcse(values: list) -> float:
+    v = np.asarray(values, float)
+    if v.shape[0] < 2 or not np.all(np.isfinite(v)):
+        return np.nan
+    return float(v.std(ddof=1) / np.sqrt(v.shape[0]))
+
+
+# The probability test orders support points by their estimated probabilities; below this many
+# draws at the observed value that order is dominated by noise (our rule, from the calibration of
+# tests/test_montecarlo.py, not a published threshold).
+_PROBABILITY_DRAWS = 20
+
+# Supports up to this size also get the likelihood-ratio test re-evaluated on every batch of draws
+# for its Monte Carlo error; beyond, that test's error counts the indicator's variability only.
+_BATCH_LR_POINTS = 2000
+
+
+def _test_rows(effect: str, dist: ConditionalDistribution, engine: str) -> list:
+    """Rows of the tests frame. A Monte Carlo p-value's error is the larger of two estimates: that
+    of the mean of the "at least as extreme" indicator over the draws (binomial, or batch means
+    for chains), and that of the p-value re-evaluated on batches of the draws, which also counts
+    the error of whatever the test estimates from the draws (moments, point probabilities)."""
+    rows = []
+    results = joint_tests(dist)
+    observed_draws = 0
+    if dist.is_monte_carlo and dist.observed_index is not None:
+        observed_draws = int(sum(np.count_nonzero(c == dist.observed_index)
+                                 for c in dist.chain_index))
+    batch_p = {t.test: [] for t in results}
+    batch_mid = {t.test: [] for t in results}
+    if dist.is_monte_carlo:
+        which = tuple(t.test for t in results
+                      if t.test != "likelihood_ratio" or dist.n_points <= _BATCH_LR_POINTS)
+        for piece in _batches(dist):
+            for bt in joint_tests(piece, which):
+                batch_p[bt.test].append(bt.p_value)
+                batch_mid[bt.test].append(bt.mid_p_value)
+    for t in results:
+        row = {"effect": effect, "test": t.test, "statistic": t.statistic,
+               "p_value": t.p_value, "mid_p_value": t.mid_p_value, "df": t.df,
+               "n_points": dist.n_points, "engine": engine, "mcse": 0.0, "mcse_mid_p": 0.0,
+               "n_draws": dist.n_draws, "note": t.note}
+        if dist.is_monte_carlo and t.test == "probability" and observed_draws < _PROBABILITY_DRAWS:
+            row["mcse"] = row["mcse_mid_p"] = np.nan
+            row["note"] = (f"the observed statistic was drawn {observed_draws} times: too few to "
+                           "rank support points by estimated probability; this Monte Carlo "
+                           "p-value is not reliable (use the score or likelihood-ratio test, or "
+                           "more draws)")
+        elif dist.is_monte_carlo and t.more is not None:
+            row["mcse"] = np.nanmax([mcse_of_indicator(dist, (t.more | t.tie).astype(float)),
+                                     _batch_mcse(batch_p[t.test])])
+            row["mcse_mid_p"] = np.nanmax([mcse_of_indicator(dist, t.more + 0.5 * t.tie),
+                                           _batch_mcse(batch_mid[t.test])])
+        rows.append(row)
+    return rows
+
+
+def _estimate_row(term, effect, piece: ConditionalDistribution, scale: float, alpha: float,
+                  engine: str) -> dict:
+    e = column_inference(piece, alpha)
+    s = scale
+    row = {
+        "term": term, "effect": effect, "estimate": e.estimate * s, "kind": e.kind,
+        "ci_lower": e.ci_lower * s, "ci_upper": e.ci_upper * s,
+        "odds_ratio": np.exp(e.estimate * s), "or_ci_lower": np.exp(e.ci_lower * s),
+        "or_ci_upper": np.exp(e.ci_upper * s), "p_value": e.p_two_sided,
+        "mid_p_value": e.mid_p_two_sided, "p_lower": e.p_lower, "p_upper": e.p_upper,
+        "cmle": e.cmle * s, "median_unbiased": e.median_unbiased * s,
+        "observed": int(piece.observed[0]), "n_points": e.n_points, "engine": engine,
+        "mcse": 0.0, "mcse_ci_lower": 0.0, "mcse_ci_upper": 0.0, "mcse_p_value": 0.0,
+        "n_draws": piece.n_draws, "note": e.note}
+    if piece.is_monte_carlo:
+        t = int(piece.observed[0])
+        col = piece.support[:, 0]
+        le, ge = (col <= t).astype(float), (col >= t).astype(float)
+        smaller = le if e.p_lower <= e.p_upper else ge
+        row["mcse_p_value"] = min(1.0, 2 * mcse_of_indicator(piece, smaller))
+        batch = [column_inference(b, alpha) for b in _batches(piece)]
+        row["mcse"] = _batch_mcse([b.estimate * s for b in batch])
+        row["mcse_ci_lower"] = _batch_mcse([b.ci_lower * s for b in batch])
+        row["mcse_ci_upper"] = _batch_mcse([b.ci_upper * s for b in batch])
+    return row
 
 
 def fit(data, formula: str | None = None, *, interest=None, strata: str | None = None,
         trials: str | None = None, method: str = "auto", alpha: float = 0.05,
-        max_nodes: int | None = None, decimals: int = 6, asymptotic: bool = True) -> FitResult:
+        max_nodes: int | None = None, decimals: int = 6, asymptotic: bool = True,
+        n_draws: int = 20_000, n_chains: int = 4, n_warmup: int = 1_000, thin: int = 10,
+        block_size: int | None = None, rng=None, n_jobs: int = 1,
+        backend: str | None = None) -> FitResult:
     """Exact conditional logistic regression: tests, estimates and limits for the interest terms.
 
     Parameters
@@ -179,9 +338,10 @@ def fit(data, formula: str | None = None, *, interest=None, strata: str | None =
         Column of matched sets / strata, whose intercepts are conditioned away.
     trials : str, optional
         Column of trials per row, for grouped binomial data (the response then counts events).
-    method : {"auto", "enumerate"}
-        Engine. Both enumerate exactly with the network algorithm today; "auto" will fall back
-        to Monte Carlo engines when the network is too large.
+    method : {"auto", "enumerate", "direct", "mcmc"}
+        Engine. "auto" enumerates exactly when the full network fits the node budget (by the
+        plan), samples independent draws from the nuisance network when only that fits, and runs
+        Markov chains otherwise; it decides for each effect and for the joint test separately.
     alpha : float
         Confidence limits are at level ``1 - alpha``.
     max_nodes : int, optional
@@ -190,6 +350,14 @@ def fit(data, formula: str | None = None, *, interest=None, strata: str | None =
         Most decimals a covariate may have before it is rejected (it is scaled to integers).
     asymptotic : bool
         Also fit the ordinary logistic model for comparison.
+    n_draws, n_chains, n_warmup, thin, block_size, n_jobs, backend
+        Monte Carlo settings (see :class:`mcexact.montecarlo.SamplerOptions`): draws in all per
+        part of the analysis, chains, Markov chain moves discarded at the start and between
+        records, groups per block move, parallel jobs and joblib backend.
+    rng : None, int, SeedSequence or Generator
+        Source of random numbers (SPEC 7). Results are identical for the same `rng` whatever
+        `n_jobs` and `backend`; without it, the fresh entropy drawn is recorded in
+        ``result.method["rng"]``.
 
     Returns
     -------
@@ -213,6 +381,8 @@ def fit(data, formula: str | None = None, *, interest=None, strata: str | None =
     """
     _check_options(method, alpha)
     alpha = float(alpha)
+    options = SamplerOptions(n_draws=n_draws, n_chains=n_chains, n_warmup=n_warmup, thin=thin,
+                             block_size=block_size, n_jobs=n_jobs, backend=backend)
     if isinstance(data, Design):
         if formula is not None or interest is not None or strata is not None or trials is not None:
             raise DataError("pass formula, interest, strata and trials only with a data frame, "
@@ -228,68 +398,76 @@ def fit(data, formula: str | None = None, *, interest=None, strata: str | None =
     effects = dict(design.effects)
     names = list(design.interest_names)
     scales = np.asarray(design.interest_scales, float)
+    # One seed per part of the analysis (each effect, then the joint test), so that every part's
+    # draws are reproducible on their own. Without rng, fresh entropy is drawn and recorded.
+    root = rng if rng is not None else np.random.SeedSequence()
+    seeds = spawn_seeds(root, len(effects) + 1)
     test_rows, estimate_rows = [], []
-    effect_dists, plans = {}, {}
-    for effect, cols in effects.items():
+    effect_dists, parts = {}, {}
+    for (effect, cols), seed in zip(effects.items(), seeds):
         sub = design if len(effects) == 1 else design.with_interest([effect])
-        dist, p, note = _exact(sub, max_nodes, f"effect {effect!r}")
-        plans[effect] = p.to_dict()
-        if dist is None:
-            raise BudgetExceeded(
-                f"mcexact: the exact network for {note}; Monte Carlo engines are needed",
-                what="full", reached=int(p.full_peak_estimate or p.nuisance_reached or 0),
-                limit=p.max_nodes)
+        dist, info = _conditional(sub, method, max_nodes, options, seed, f"effect {effect!r}")
+        parts[effect] = info
         effect_dists[effect] = dist
-        for t in joint_tests(dist):
-            test_rows.append({"effect": effect, "test": t.test, "statistic": t.statistic,
-                              "p_value": t.p_value, "mid_p_value": t.mid_p_value, "df": t.df,
-                              "n_points": dist.n_points, "note": t.note})
+        test_rows += _test_rows(effect, dist, info["engine"])
         for k, c in enumerate(cols):
             others = [j for j in range(len(cols)) if j != k]
             piece = dist.condition(others) if others else dist
-            e = column_inference(piece, alpha)
-            s = scales[c]
-            estimate_rows.append({
-                "term": names[c], "effect": effect, "estimate": e.estimate * s, "kind": e.kind,
-                "ci_lower": e.ci_lower * s, "ci_upper": e.ci_upper * s,
-                "odds_ratio": np.exp(e.estimate * s), "or_ci_lower": np.exp(e.ci_lower * s),
-                "or_ci_upper": np.exp(e.ci_upper * s), "p_value": e.p_two_sided,
-                "mid_p_value": e.mid_p_two_sided, "p_lower": e.p_lower, "p_upper": e.p_upper,
-                "cmle": e.cmle * s, "median_unbiased": e.median_unbiased * s,
-                "observed": int(piece.observed[0]), "n_points": e.n_points, "note": e.note})
+            estimate_rows.append(_estimate_row(names[c], effect, piece, scales[c], alpha,
+                                               info["engine"]))
 
     # Joint distribution of all interest columns.
     joint_estimate = None
     if len(effects) == 1:
         joint = next(iter(effect_dists.values()))
-        plans["joint"] = next(iter(plans.values()))
+        parts["joint"] = next(iter(parts.values()))
     else:
-        joint, p, note = _exact(design, max_nodes, "joint test")
-        plans["joint"] = p.to_dict()
-        if joint is None:
-            notes.append(f"the joint test was not computed: {note}")
+        try:
+            joint, info = _conditional(design, method, max_nodes, options, seeds[-1],
+                                       "the joint test")
+            parts["joint"] = info
+        except BudgetExceeded as exc:
+            joint = None
+            notes.append(f"the joint test was not computed: {exc}")
     if joint is not None:
-        for t in joint_tests(joint):
-            test_rows.append({"effect": "joint", "test": t.test, "statistic": t.statistic,
-                              "p_value": t.p_value, "mid_p_value": t.mid_p_value, "df": t.df,
-                              "n_points": joint.n_points, "note": t.note})
+        test_rows += _test_rows("joint", joint, parts["joint"]["engine"])
         b = joint_cmle(joint)
         if b is None:
             notes.append("the joint conditional MLE does not exist: the observed statistics lie "
-                         "on the boundary of their support's convex hull")
+                         "on the boundary of their support's convex hull"
+                         + (" (of the values drawn)" if joint.is_monte_carlo else ""))
         else:
             joint_estimate = pd.Series(b * scales, index=names, name="joint_cmle")
+    for part, dist in list(effect_dists.items()) + [("joint", joint)]:
+        if dist is not None and dist.is_monte_carlo:
+            row = dist.observed_index
+            if row is None or not np.isfinite(dist.log_weights[row]):
+                notes.append(f"{part}: the observed statistic was never drawn; its p-values are "
+                             "estimated as 0 and need more draws to be quoted")
 
     tests = pd.DataFrame(test_rows, columns=_TEST_COLUMNS)
     estimates = pd.DataFrame(estimate_rows, columns=_ESTIMATE_COLUMNS)
+    engines = sorted({info["engine"] for info in parts.values()})
     method_info = {
-        "engine": "exact",
-        "description": "exact enumeration by the network algorithm (Hirji, Mehta & Patel 1987)",
         "requested": method,
-        "reason": ("every network fits the node budget" if method == "auto"
-                   else "enumeration requested"),
-        "plans": plans,
+        "engines": engines,
+        "description": "; ".join(ENGINE_DESCRIPTIONS[e] for e in engines),
+        "parts": parts,
+        "options": {"n_draws": n_draws, "n_chains": n_chains, "n_warmup": n_warmup,
+                    "thin": thin, "block_size": block_size, "n_jobs": n_jobs,
+                    "backend": backend, "max_nodes": max_nodes},
+        "rng": _rng_record(root),
     }
     comparison = asymptotic_fit(design) if asymptotic else None
     return FitResult(design, tests, estimates, joint_estimate, joint, effect_dists, method_info,
                      comparison, alpha, notes)
+
+
+def _rng_record(root) -> dict:
+    """How to reproduce the run's random numbers."""
+    if isinstance(root, np.random.SeedSequence):
+        return {"kind": "SeedSequence", "entropy": _plain(root.entropy),
+                "spawn_key": list(root.spawn_key)}
+    if isinstance(root, (int, np.integer)):
+        return {"kind": "int", "seed": int(root)}
+    return {"kind": type(root).__name__}

@@ -19,7 +19,7 @@ Lancaster, H. O. (1961). Significance tests in discrete distributions. JASA 56, 
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from scipy.optimize import brentq, linprog
@@ -72,6 +72,9 @@ class TestResult:
         Number of interest columns tested.
     note : str
         Why a value is missing, if one is.
+    more, tie : ndarray of bool or None
+        Per support point: strictly more extreme than observed, and tied with it (for Monte Carlo
+        errors of the p-values).
     """
 
     test: str
@@ -80,6 +83,8 @@ class TestResult:
     mid_p_value: float
     df: int
     note: str = ""
+    more: np.ndarray | None = field(default=None, repr=False, compare=False)
+    tie: np.ndarray | None = field(default=None, repr=False, compare=False)
 
 
 @dataclass(frozen=True)
@@ -136,8 +141,11 @@ class _Slice:
         if dist.n_columns != 1:
             raise ValueError("a one-column distribution is needed")
         self.t = int(dist.observed[0])
-        support = dist.support[:, 0]
-        self.lw = dist.log_weights
+        # Points of zero weight (a Monte Carlo distribution keeps the observed value even when it
+        # was never drawn) take no part in the support's range.
+        keep = np.isfinite(dist.log_weights) | np.all(dist.support == dist.observed, axis=1)
+        support = dist.support[keep, 0]
+        self.lw = dist.log_weights[keep]
         p0 = np.exp(self.lw - logsumexp(self.lw))
         mu = p0 @ support
         sd = float(np.sqrt(max(p0 @ (support - mu) ** 2, 0.0)))
@@ -146,7 +154,9 @@ class _Slice:
         self.ge = support >= self.t
         self.le = support <= self.t
         self.eq = support == self.t
-        self.t_min, self.t_max = int(support.min()), int(support.max())
+        live = support[np.isfinite(self.lw)]
+        self.t_min, self.t_max = int(live.min()), int(live.max())
+        self.n_live = int(live.shape[0])
 
     def log_norm(self, b: float) -> float:
         return float(logsumexp(self.lw + b * self.u))
@@ -233,7 +243,7 @@ def column_inference(dist: ConditionalDistribution, alpha: float = 0.05) -> Colu
         On the coded scale of ``dist`` (multiply by ``dist.scales`` for per-unit values).
     """
     s = _Slice(dist)
-    n = dist.n_points
+    n = s.n_live
     if n == 1:
         return ColumnEstimate(np.nan, "none", np.nan, np.nan, -np.inf, np.inf, 1.0, 1.0, 0.5, 0.5,
                               1.0, 1.0, 1, "both",
@@ -243,7 +253,7 @@ def column_inference(dist: ConditionalDistribution, alpha: float = 0.05) -> Colu
     mid_le, mid_ge = p_le - 0.5 * p_eq, p_ge - 0.5 * p_eq
     p2 = min(1.0, 2 * min(p_le, p_ge))
     mid2 = min(1.0, 2 * min(mid_le, mid_ge))
-    at_lower, at_upper = s.t == s.t_min, s.t == s.t_max
+    at_lower, at_upper = s.t <= s.t_min, s.t >= s.t_max
     edge = "lower" if at_lower else "upper" if at_upper else ""
 
     # Median unbiased: b1 from the upper tail, b2 from the lower tail.
@@ -263,6 +273,11 @@ def column_inference(dist: ConditionalDistribution, alpha: float = 0.05) -> Colu
     note = ("" if not edge else
             f"observed value at the {edge} edge of its support: the conditional MLE is infinite, "
             "the median unbiased estimate is reported")
+    true_edge = (dist.support_min if at_lower else dist.support_max) if edge else None
+    if true_edge is not None and dist.n_columns == 1 and int(true_edge[0]) != s.t:
+        note = (f"observed value at the {edge} edge of the values drawn but not of the exact "
+                "support: estimates from these draws are unreliable; draw more, or sample a "
+                "tilted distribution")
 
     def unscale(b):
         return b / s.sd
@@ -283,15 +298,19 @@ def _standardise(dist: ConditionalDistribution):
     return (T - mu) / sd, (dist.observed - mu) / sd, lw, p0, sd
 
 
-def _tail(stat: np.ndarray, obs: float, p0: np.ndarray, larger_is_extreme: bool = True):
-    """p-value and mid-p-value with relative tie tolerance TIE_RTOL."""
+def _masks(stat: np.ndarray, obs: float, larger_is_extreme: bool = True):
+    """Points strictly more extreme than `obs`, and points tied with it (relative TIE_RTOL)."""
     tol = TIE_RTOL * max(abs(obs), 1e-300)
-    if larger_is_extreme:
-        more, tie = stat > obs + tol, np.abs(stat - obs) <= tol
-    else:
-        more, tie = stat < obs - tol, np.abs(stat - obs) <= tol
+    with np.errstate(invalid="ignore"):
+        tie = np.abs(stat - obs) <= tol
+        more = (stat > obs + tol) if larger_is_extreme else (stat < obs - tol)
+    return more, tie
+
+
+def _result(name: str, statistic: float, more, tie, p0, q: int, note: str = "") -> TestResult:
     p_more, p_tie = float(p0[more].sum()), float(p0[tie].sum())
-    return min(1.0, p_more + p_tie), min(1.0, p_more + 0.5 * p_tie)
+    return TestResult(name, statistic, min(1.0, p_more + p_tie), min(1.0, p_more + 0.5 * p_tie),
+                      q, note, more, tie)
 
 
 def _sup_loglik(targets: np.ndarray, T: np.ndarray, lw: np.ndarray,
@@ -454,7 +473,8 @@ def _lr_statistics(Tz: np.ndarray, lw: np.ndarray, obs: int) -> np.ndarray:
     return out
 
 
-def joint_tests(dist: ConditionalDistribution) -> list[TestResult]:
+def joint_tests(dist: ConditionalDistribution,
+                tests=("score", "probability", "likelihood_ratio")) -> list[TestResult]:
     """Score, probability and likelihood-ratio tests of beta = 0 for all columns of `dist`.
 
     - Score: ``Q(u) = (u - mu)' Sigma^-1 (u - mu)`` with the null mean and covariance of T;
@@ -463,35 +483,43 @@ def joint_tests(dist: ConditionalDistribution) -> list[TestResult]:
     - Likelihood ratio: ``G(u) = 2 (sup_b log f_b(u) - log f0(u))``, ``p = P0(G(T) >= G(t))``.
 
     Ties within relative tolerance :data:`TIE_RTOL` count as "at least as extreme"; mid-p-values
-    (Lancaster 1961) count half of them.
+    (Lancaster 1961) count half of them. `tests` selects which to compute.
     """
     q = dist.n_columns
     if dist.n_points == 1:
         note = ("the statistic has a single possible value given the nuisance statistics: "
                 "no test is possible")
-        return [TestResult(name, np.nan, 1.0, 1.0, q, note)
-                for name in ("score", "probability", "likelihood_ratio")]
+        return [TestResult(name, np.nan, 1.0, 1.0, q, note) for name in tests]
     Tz, tz, lw, p0, _ = _standardise(dist)
     log_p0 = lw - logsumexp(lw)
     obs = dist.observed_index
     results = []
 
     # Score test. A singular covariance (a column fixed by the others) is handled by pseudo-inverse.
-    cov = (Tz * p0[:, None]).T @ Tz
+    # Exact moments, when an engine supplies them, replace those of the (sampled) distribution.
+    if dist.null_mean is not None and dist.null_cov is not None:
+        T = dist.support.astype(float)
+        Tc, tc = T - dist.null_mean, dist.observed - dist.null_mean
+        cov = np.asarray(dist.null_cov, float)
+    else:
+        Tc, tc = Tz, tz
+        cov = (Tz * p0[:, None]).T @ Tz
     inv = np.linalg.pinv(cov, rcond=1e-10, hermitian=True)
-    Q = np.einsum("ni,ij,nj->n", Tz, inv, Tz)
-    q_obs = float(tz @ inv @ tz)
-    p, mid = _tail(Q, q_obs, p0)
-    results.append(TestResult("score", q_obs, p, mid, q))
+    Q = np.einsum("ni,ij,nj->n", Tc, inv, Tc)
+    q_obs = float(tc @ inv @ tc)
+    results.append(_result("score", q_obs, *_masks(Q, q_obs), p0, q))
 
-    # Probability test: small probability is extreme; compare on the log scale.
+    # Probability test: small probability is extreme; compared on the log scale, where the
+    # tolerance is absolute (a relative tolerance on the probabilities).
     lp_obs = float(log_p0[obs]) if obs is not None else -np.inf
-    tol = TIE_RTOL
-    more = log_p0 < lp_obs - tol
-    tie = np.abs(log_p0 - lp_obs) <= tol
-    p_more, p_tie = float(p0[more].sum()), float(p0[tie].sum())
-    results.append(TestResult("probability", float(np.exp(lp_obs)), min(1.0, p_more + p_tie),
-                              min(1.0, p_more + 0.5 * p_tie), q))
+    with np.errstate(invalid="ignore"):
+        more = log_p0 < lp_obs - TIE_RTOL
+        tie = np.abs(log_p0 - lp_obs) <= TIE_RTOL
+    results.append(_result("probability", float(np.exp(lp_obs)), more, tie, p0, q))
+
+    results = [r for r in results if r.test in tests]
+    if "likelihood_ratio" not in tests:
+        return results
 
     # Likelihood-ratio test.
     G = 2.0 * (_lr_statistics(Tz, lw, obs) + logsumexp(lw))
@@ -502,8 +530,7 @@ def joint_tests(dist: ConditionalDistribution) -> list[TestResult]:
         G[ends] = -2.0 * log_p0[ends]
     G = np.maximum(G, 0.0)
     g_obs = float(G[obs]) if obs is not None else np.nan
-    p, mid = _tail(G, g_obs, p0)
-    results.append(TestResult("likelihood_ratio", g_obs, p, mid, q))
+    results.append(_result("likelihood_ratio", g_obs, *_masks(G, g_obs), p0, q))
     return results
 
 

@@ -59,24 +59,34 @@ def text_report(result) -> str:
     elif d.fix_stratum_totals:
         nuisance.append("intercept")
     lines.append(f"Nuisance   {', '.join(nuisance) if nuisance else 'none'}")
-    plans = result.method.get("plans", {})
-    joint_plan = plans.get("joint") or {}
-    lines.append(f"Engine     {result.method['description']}; {result.method['reason']}")
-    if joint_plan.get("nuisance_nodes") is not None:
-        lines.append(f"           joint network: {joint_plan['nuisance_nodes']:,} nuisance nodes, "
-                     f"largest stage at most {joint_plan['full_peak_estimate']:,.0f} nodes")
-
+    lines.append("Engines    " + result.method["description"])
+    for part, info in result.method["parts"].items():
+        plan = info.get("plan") or {}
+        size = ""
+        if plan.get("nuisance_nodes") is not None:
+            size = (f"; nuisance network {plan['nuisance_nodes']:,} nodes, full network at most "
+                    f"{plan['full_peak_estimate']:,.0f} nodes per stage")
+        draws = f", {info['n_draws']:,} draws" if info.get("n_draws") else ""
+        lines.append(_wrap(f"{part}: {info['engine']}{draws} ({info['reason']}{size})",
+                           indent="           "))
     lines += ["", "Conditional tests of no effect (p-values from the conditional distribution)"]
-    lines.append(_table(result.tests, {"effect": "effect", "test": "test",
-                                       "statistic": "statistic", "p_value": "p-value",
-                                       "mid_p_value": "mid-p", "df": "df",
-                                       "n_points": "support"}))
+    monte_carlo = bool((result.tests["engine"] != "exact").any()) if len(result.tests) else False
+    columns = {"effect": "effect", "test": "test", "statistic": "statistic", "p_value": "p-value",
+               "mid_p_value": "mid-p", "df": "df", "n_points": "support"}
+    if monte_carlo:
+        columns.update({"mcse": "MC error (p)", "engine": "engine"})
+    lines.append(_table(result.tests, columns))
+    if monte_carlo:
+        lines.append(_wrap("MC error: Monte Carlo standard error of the p-value (0 for exact "
+                           "rows); Monte Carlo p-values are estimates."))
 
     lines += ["", f"Estimates per original unit, exact {level} limits"]
-    lines.append(_table(result.estimates, {
-        "term": "term", "estimate": "estimate", "kind": "kind", "ci_lower": "lower",
-        "ci_upper": "upper", "odds_ratio": "odds ratio", "or_ci_lower": "OR lower",
-        "or_ci_upper": "OR upper"}))
+    columns = {"term": "term", "estimate": "estimate", "kind": "kind", "ci_lower": "lower",
+               "ci_upper": "upper", "odds_ratio": "odds ratio", "or_ci_lower": "OR lower",
+               "or_ci_upper": "OR upper"}
+    if monte_carlo:
+        columns["mcse"] = "MC error"
+    lines.append(_table(result.estimates, columns))
     lines.append("")
     lines.append(_table(result.estimates, {
         "term": "term", "observed": "observed T", "p_lower": "P(T<=t)", "p_upper": "P(T>=t)",

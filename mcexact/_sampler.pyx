@@ -1,0 +1,497 @@
+# cython: language_level=3, boundscheck=False, wraparound=False, cdivision=True, initializedcheck=False
+"""Monte Carlo kernels: draws of the interest statistics with the nuisance statistics held fixed.
+
+Design
+------
+Two engines, both recording only the interest statistic T = Z'y of each draw (never y):
+
+* `direct_draws` walks the pruned nuisance network of ``mcexact/_network.pyx`` from its root,
+  choosing at each stage an arc with its transition probability C(m, y) B(successor) / B(node)
+  (Mehta, Patel & Senchaudhuri 2000). Every walk is an independent exact draw from the conditional
+  distribution: no burn-in, no autocorrelation. A tilted target only changes the probabilities.
+* `run_chain` is a Markov chain on response vectors with the nuisance statistics fixed, for when
+  the nuisance network itself is too large. Its moves keep W'y (and the events of every stratum)
+  fixed by construction:
+  - *swap* (nuisance = intercept and/or strata only): one event moves from a group of a stratum to
+    another group of the same stratum; proposals pick the giving group among those with events and
+    the receiving group among those with room, and a Hastings factor corrects for those sets'
+    sizes, so the chain is exact for the null and for tilted targets;
+  - *block* (integer nuisance columns): a random block of r groups (half the time from one stratum,
+    half the time from anywhere) is redrawn from its exact conditional distribution given the rest,
+    over the small fiber {x : W_A'x = W_A'y_A, stratum counts of A fixed, 0 <= x <= m_A}
+    enumerated by depth-first search with bound pruning. A Gibbs move: always accepted. A block
+    whose fiber is too large to enumerate is left as it is; that decision depends on the fiber only,
+    so the chain stays reversible. Block moves need not connect the whole fiber of the data
+    (irreducibility is not guaranteed): the diagnostics compare chains and exact answers.
+
+Random numbers come from a numpy BitGenerator through its `bitgen_t` capsule, under its lock.
+"""
+
+import numpy as np
+cimport numpy as cnp
+from cpython.pycapsule cimport PyCapsule_GetPointer, PyCapsule_IsValid
+from libc.math cimport exp, log, INFINITY
+from libc.stdint cimport int32_t, int64_t, uint32_t, uint64_t
+from libc.stdlib cimport malloc, free
+from numpy.random cimport bitgen_t
+
+from mcexact._random cimport draw_bounded, draw_uniform
+
+cnp.import_array()
+
+cdef enum:
+    MV_SWAP = 0
+    MV_BLOCK = 1
+    # Largest block a move may redraw, and how large a block's fiber (or its search) may be
+    # before the move is skipped: enumeration costs grow with the fiber, and blocks this large
+    # already mix well.
+    C_MAX_BLOCK = 32
+    C_MAX_FIBER = 4096
+    C_MAX_VISITS = 200000
+
+MOVE_SWAP = MV_SWAP
+MOVE_BLOCK = MV_BLOCK
+MAX_BLOCK = C_MAX_BLOCK
+MAX_FIBER = C_MAX_FIBER
+
+
+cdef bitgen_t *_bitgen(object bit_generator) except NULL:
+    capsule = bit_generator.capsule
+    if not PyCapsule_IsValid(capsule, "BitGenerator"):
+        raise ValueError("mcexact: not a numpy BitGenerator")
+    return <bitgen_t *> PyCapsule_GetPointer(capsule, "BitGenerator")
+
+
+def direct_draws(object bit_generator,
+                 const int64_t[::1] node_arc_ptr,
+                 const int64_t[::1] arc_succ,
+                 const int32_t[::1] arc_y,
+                 const double[::1] arc_cum,
+                 const int64_t[:, ::1] z,
+                 int64_t[:, ::1] out):
+    """Fill `out` (n_draws, q) with independent draws of T by walks through the nuisance network.
+
+    Parameters
+    ----------
+    bit_generator : numpy.random.BitGenerator
+    node_arc_ptr : (n_nodes + 1,) arcs of global node i are node_arc_ptr[i]:node_arc_ptr[i + 1]
+    arc_succ : (n_arcs,) global index of each arc's successor
+    arc_y : (n_arcs,) events the arc puts in its stage's group
+    arc_cum : (n_arcs,) cumulative transition probability within each node (last arc: 1)
+    z : (K, q) coded interest covariates per stage
+    out : (n_draws, q) int64, written
+    """
+    cdef bitgen_t *bg = _bitgen(bit_generator)
+    cdef Py_ssize_t n_draws = out.shape[0]
+    cdef Py_ssize_t q = z.shape[1]
+    cdef Py_ssize_t K = z.shape[0]
+    cdef Py_ssize_t r, k, j
+    cdef int64_t node, a, lo, hi, mid, y
+    cdef double u
+    with bit_generator.lock, nogil:
+        for r in range(n_draws):
+            for j in range(q):
+                out[r, j] = 0
+            node = 0
+            for k in range(K):
+                u = draw_uniform(bg)
+                lo = node_arc_ptr[node]
+                hi = node_arc_ptr[node + 1] - 1
+                # First arc whose cumulative probability exceeds u (bisection: groups may be large).
+                while lo < hi:
+                    mid = (lo + hi) >> 1
+                    if arc_cum[mid] > u:
+                        hi = mid
+                    else:
+                        lo = mid + 1
+                y = arc_y[lo]
+                if y != 0:
+                    for j in range(q):
+                        out[r, j] += y * z[k, j]
+                node = arc_succ[lo]
+
+
+cdef struct Chain:
+    # Problem
+    int64_t K
+    int64_t p
+    int64_t q
+    const int64_t *m
+    const int64_t *z          # K x q
+    const int64_t *w          # K x p
+    const int64_t *stratum    # K
+    const int64_t *start      # H: first group of each stratum
+    const int64_t *size       # H: groups in each stratum
+    const double *theta       # K: tilt per unit event in each group
+    const double *log_fact    # log k! for k = 0..max m
+    bint fixed
+    # State
+    int64_t *y
+    int64_t *T
+    # Swap bookkeeping: per stratum, the groups that can give an event (down) or take one (up)
+    int64_t *down_list
+    int64_t *down_pos
+    int64_t *down_count
+    int64_t *up_list
+    int64_t *up_pos
+    int64_t *up_count
+    const int64_t *informative  # strata with at least two groups
+    int64_t n_informative
+    # Block scratch
+    int64_t r
+    int64_t *block
+    int64_t *cons            # block x n_cons constraint coefficients
+    int64_t n_cons
+    int64_t *target
+    int64_t *partial
+    int64_t *rem_lo          # (r + 1) x n_cons suffix bounds
+    int64_t *rem_hi
+    int64_t *x
+    int64_t *fiber           # C_MAX_FIBER x r feasible blocks
+    double *fiber_lw
+    int64_t n_fiber
+    int64_t visits
+    bint overflow
+
+
+cdef inline double log_binom(const Chain *c, int64_t m, int64_t y) noexcept nogil:
+    return c.log_fact[m] - c.log_fact[y] - c.log_fact[m - y]
+
+
+cdef inline void set_remove(int64_t *lst, int64_t *pos, int64_t *count, int64_t base,
+                            int64_t h, int64_t g) noexcept nogil:
+    cdef int64_t i = pos[g]
+    cdef int64_t last = lst[base + count[h] - 1]
+    lst[i] = last
+    pos[last] = i
+    pos[g] = -1
+    count[h] -= 1
+
+
+cdef inline void set_add(int64_t *lst, int64_t *pos, int64_t *count, int64_t base,
+                         int64_t h, int64_t g) noexcept nogil:
+    cdef int64_t i = base + count[h]
+    lst[i] = g
+    pos[g] = i
+    count[h] += 1
+
+
+cdef inline void change_y(Chain *c, int64_t g, int64_t delta) noexcept nogil:
+    """Add `delta` events to group g, keeping T and the swap sets in step."""
+    cdef int64_t h = c.stratum[g]
+    cdef int64_t base = c.start[h]
+    cdef int64_t old = c.y[g]
+    cdef int64_t new = old + delta
+    cdef Py_ssize_t j
+    c.y[g] = new
+    for j in range(c.q):
+        c.T[j] += delta * c.z[g * c.q + j]
+    if c.down_list != NULL:
+        if old == 0 and new > 0:
+            set_add(c.down_list, c.down_pos, c.down_count, base, h, g)
+        elif old > 0 and new == 0:
+            set_remove(c.down_list, c.down_pos, c.down_count, base, h, g)
+        if old == c.m[g] and new < c.m[g]:
+            set_add(c.up_list, c.up_pos, c.up_count, base, h, g)
+        elif old < c.m[g] and new == c.m[g]:
+            set_remove(c.up_list, c.up_pos, c.up_count, base, h, g)
+
+
+cdef int swap_move(Chain *c, bitgen_t *bg) noexcept nogil:
+    """One event from group j to group i of a random stratum. Returns 1 if accepted."""
+    cdef int64_t h, i, j, base, n_up, n_down, n_up2, n_down2
+    cdef double ratio
+    if c.n_informative == 0:
+        return 0
+    h = c.informative[draw_bounded(bg, <uint32_t> c.n_informative)]
+    base = c.start[h]
+    n_up = c.up_count[h]
+    n_down = c.down_count[h]
+    if n_up == 0 or n_down == 0:
+        return 0
+    i = c.up_list[base + draw_bounded(bg, <uint32_t> n_up)]
+    j = c.down_list[base + draw_bounded(bg, <uint32_t> n_down)]
+    if i == j:
+        return 0
+    # Set sizes after the move, for the Hastings factor |Up||Down| / (|Up'||Down'|).
+    n_up2 = n_up - (1 if c.y[i] + 1 == c.m[i] else 0) + (1 if c.y[j] == c.m[j] else 0)
+    n_down2 = n_down + (1 if c.y[i] == 0 else 0) - (1 if c.y[j] == 1 else 0)
+    ratio = (<double> (c.m[i] - c.y[i]) / (c.y[i] + 1)) * (<double> c.y[j] / (c.m[j] - c.y[j] + 1))
+    ratio *= exp(c.theta[i] - c.theta[j]) * (<double> (n_up * n_down)) / (n_up2 * n_down2)
+    if ratio < 1.0 and draw_uniform(bg) >= ratio:
+        return 0
+    change_y(c, i, 1)
+    change_y(c, j, -1)
+    return 1
+
+
+cdef void enumerate_block(Chain *c, int64_t k, double lw) noexcept nogil:
+    """Depth-first search over block position k.. for x meeting the block's constraints."""
+    cdef int64_t g, x, lim, need, j
+    cdef bint ok
+    cdef int64_t *part = c.partial
+    if c.overflow:
+        return
+    c.visits += 1
+    if c.visits > C_MAX_VISITS:
+        c.overflow = True
+        return
+    if k == c.r:
+        for j in range(c.n_cons):
+            if part[j] != c.target[j]:
+                return
+        if c.n_fiber >= C_MAX_FIBER:
+            c.overflow = True
+            return
+        for j in range(c.r):
+            c.fiber[c.n_fiber * c.r + j] = c.x[j]
+        c.fiber_lw[c.n_fiber] = lw
+        c.n_fiber += 1
+        return
+    g = c.block[k]
+    lim = c.m[g]
+    for x in range(lim + 1):
+        ok = True
+        for j in range(c.n_cons):
+            need = c.target[j] - part[j] - x * c.cons[k * c.n_cons + j]
+            if need < c.rem_lo[(k + 1) * c.n_cons + j] or need > c.rem_hi[(k + 1) * c.n_cons + j]:
+                ok = False
+                break
+        if not ok:
+            continue
+        for j in range(c.n_cons):
+            part[j] += x * c.cons[k * c.n_cons + j]
+        c.x[k] = x
+        enumerate_block(c, k + 1, lw + log_binom(c, lim, x) + x * c.theta[g])
+        for j in range(c.n_cons):
+            part[j] -= x * c.cons[k * c.n_cons + j]
+        if c.overflow:
+            return
+
+
+cdef bint in_block(const Chain *c, int64_t n, int64_t g) noexcept nogil:
+    cdef int64_t i
+    for i in range(n):
+        if c.block[i] == g:
+            return True
+    return False
+
+
+cdef int block_move(Chain *c, bitgen_t *bg, int64_t r) noexcept nogil:
+    """Redraw a random block from its exact conditional distribution. Returns 1 if y changed,
+    0 if it could not change (a single-point fiber), -1 if the fiber was too large."""
+    cdef int64_t n, h, g, i, j, k, s, pick, v, lo, hi
+    cdef int64_t n_strata_in = 0
+    cdef int64_t strata_in[32]
+    cdef double top, total, u, acc
+    cdef int64_t first, count
+    cdef bint within = draw_bounded(bg, 2) == 0
+    if within:
+        # A random group's stratum (so strata are chosen in proportion to their size).
+        h = c.stratum[draw_bounded(bg, <uint32_t> c.K)]
+        first, count = c.start[h], c.size[h]
+    else:
+        first, count = 0, c.K
+    if count <= r:
+        n = count
+        for i in range(n):
+            c.block[i] = first + i
+    else:
+        n = r
+        i = 0
+        while i < n:
+            g = first + draw_bounded(bg, <uint32_t> count)
+            if not in_block(c, i, g):
+                c.block[i] = g
+                i += 1
+    if n < 2:
+        return 0
+    c.r = n
+    # Constraints: nuisance columns, then one count per stratum present (when strata are fixed).
+    if c.fixed:
+        for i in range(n):
+            h = c.stratum[c.block[i]]
+            s = -1
+            for j in range(n_strata_in):
+                if strata_in[j] == h:
+                    s = j
+            if s < 0:
+                strata_in[n_strata_in] = h
+                n_strata_in += 1
+    c.n_cons = c.p + n_strata_in
+    for i in range(n):
+        g = c.block[i]
+        for j in range(c.p):
+            c.cons[i * c.n_cons + j] = c.w[g * c.p + j]
+        for j in range(n_strata_in):
+            c.cons[i * c.n_cons + c.p + j] = 1 if c.stratum[g] == strata_in[j] else 0
+    for j in range(c.n_cons):
+        c.target[j] = 0
+        c.partial[j] = 0
+        c.rem_lo[n * c.n_cons + j] = 0
+        c.rem_hi[n * c.n_cons + j] = 0
+        for i in range(n):
+            c.target[j] += c.cons[i * c.n_cons + j] * c.y[c.block[i]]
+    for i in range(n - 1, -1, -1):
+        g = c.block[i]
+        for j in range(c.n_cons):
+            v = c.cons[i * c.n_cons + j] * c.m[g]
+            lo = v if v < 0 else 0
+            hi = v if v > 0 else 0
+            c.rem_lo[i * c.n_cons + j] = c.rem_lo[(i + 1) * c.n_cons + j] + lo
+            c.rem_hi[i * c.n_cons + j] = c.rem_hi[(i + 1) * c.n_cons + j] + hi
+    c.n_fiber = 0
+    c.visits = 0
+    c.overflow = False
+    enumerate_block(c, 0, 0.0)
+    if c.overflow:
+        return -1
+    if c.n_fiber <= 1:
+        return 0
+    top = -INFINITY
+    for i in range(c.n_fiber):
+        if c.fiber_lw[i] > top:
+            top = c.fiber_lw[i]
+    total = 0.0
+    for i in range(c.n_fiber):
+        c.fiber_lw[i] = exp(c.fiber_lw[i] - top)
+        total += c.fiber_lw[i]
+    u = draw_uniform(bg) * total
+    acc = 0.0
+    pick = c.n_fiber - 1
+    for i in range(c.n_fiber):
+        acc += c.fiber_lw[i]
+        if u < acc:
+            pick = i
+            break
+    for i in range(n):
+        g = c.block[i]
+        v = c.fiber[pick * n + i] - c.y[g]
+        if v != 0:
+            change_y(c, g, v)
+    return 1
+
+
+def run_chain(object bit_generator,
+              int64_t[::1] y,
+              const int64_t[::1] m,
+              const int64_t[:, ::1] z,
+              const int64_t[:, ::1] w,
+              const int64_t[::1] stratum,
+              const int64_t[::1] start,
+              const int64_t[::1] size,
+              const double[::1] theta,
+              const double[::1] log_fact,
+              bint fixed,
+              int move,
+              int64_t block_size,
+              int64_t burn,
+              int64_t thin,
+              int64_t[:, ::1] out,
+              int64_t[::1] counters):
+    """Run one chain: `burn` moves, then `out.shape[0]` records of T, one every `thin` moves.
+
+    `y` (the state, in stage order) is updated in place, so a chain can be continued exactly.
+    `counters` receives [moves, accepted moves, moves skipped because a block's fiber was too
+    large]. All arrays are validated by the caller.
+    """
+    cdef bitgen_t *bg = _bitgen(bit_generator)
+    cdef Chain c
+    cdef int64_t K = m.shape[0]
+    cdef int64_t H = start.shape[0]
+    cdef int64_t q = z.shape[1]
+    cdef int64_t n_rec = out.shape[0]
+    cdef int64_t i, h, g, rec, step, res
+    cdef int64_t r = block_size if block_size < C_MAX_BLOCK else C_MAX_BLOCK
+    cdef int64_t n_cons_max = w.shape[1] + r
+    cdef int64_t[::1] informative = np.array(
+        [hh for hh in range(H) if size[hh] >= 2], dtype=np.int64)
+    cdef int64_t[::1] T = np.zeros(q, dtype=np.int64)
+    cdef int64_t[::1] down_list = np.zeros(K, dtype=np.int64)
+    cdef int64_t[::1] down_pos = np.full(K, -1, dtype=np.int64)
+    cdef int64_t[::1] down_count = np.zeros(H, dtype=np.int64)
+    cdef int64_t[::1] up_list = np.zeros(K, dtype=np.int64)
+    cdef int64_t[::1] up_pos = np.full(K, -1, dtype=np.int64)
+    cdef int64_t[::1] up_count = np.zeros(H, dtype=np.int64)
+    cdef int64_t[::1] block = np.zeros(C_MAX_BLOCK, dtype=np.int64)
+    cdef int64_t[::1] cons = np.zeros(C_MAX_BLOCK * n_cons_max, dtype=np.int64)
+    cdef int64_t[::1] target = np.zeros(n_cons_max, dtype=np.int64)
+    cdef int64_t[::1] partial = np.zeros(n_cons_max, dtype=np.int64)
+    cdef int64_t[::1] rem_lo = np.zeros((C_MAX_BLOCK + 1) * n_cons_max, dtype=np.int64)
+    cdef int64_t[::1] rem_hi = np.zeros((C_MAX_BLOCK + 1) * n_cons_max, dtype=np.int64)
+    cdef int64_t[::1] xbuf = np.zeros(C_MAX_BLOCK, dtype=np.int64)
+    cdef int64_t[::1] fiber = np.zeros(C_MAX_FIBER * C_MAX_BLOCK, dtype=np.int64)
+    cdef double[::1] fiber_lw = np.zeros(C_MAX_FIBER)
+    cdef int64_t dummy = 0
+
+    c.K = K
+    c.p = w.shape[1]
+    c.q = q
+    c.m = &m[0]
+    c.z = &z[0, 0] if q > 0 else &dummy
+    c.w = &w[0, 0] if c.p > 0 else &dummy
+    c.stratum = &stratum[0]
+    c.start = &start[0]
+    c.size = &size[0]
+    c.theta = &theta[0]
+    c.log_fact = &log_fact[0]
+    c.fixed = fixed
+    c.y = &y[0]
+    c.T = &T[0]
+    c.informative = &informative[0] if informative.shape[0] > 0 else &dummy
+    c.n_informative = informative.shape[0]
+    c.r = r
+    c.block = &block[0]
+    c.cons = &cons[0]
+    c.target = &target[0]
+    c.partial = &partial[0]
+    c.rem_lo = &rem_lo[0]
+    c.rem_hi = &rem_hi[0]
+    c.x = &xbuf[0]
+    c.fiber = &fiber[0]
+    c.fiber_lw = &fiber_lw[0]
+    c.down_list = &down_list[0]
+    c.down_pos = &down_pos[0]
+    c.down_count = &down_count[0]
+    c.up_list = &up_list[0]
+    c.up_pos = &up_pos[0]
+    c.up_count = &up_count[0]
+
+    for g in range(K):
+        for i in range(q):
+            T[i] += y[g] * z[g, i]
+        h = stratum[g]
+        if y[g] > 0:
+            set_add(c.down_list, c.down_pos, c.down_count, start[h], h, g)
+        if y[g] < m[g]:
+            set_add(c.up_list, c.up_pos, c.up_count, start[h], h, g)
+
+    with bit_generator.lock, nogil:
+        rec = 0
+        step = 0
+        while rec < n_rec:
+            if move == MV_SWAP:
+                res = swap_move(&c, bg)
+            else:
+                res = block_move(&c, bg, r)
+            counters[0] += 1
+            if res == 1:
+                counters[1] += 1
+            elif res == -1:
+                counters[2] += 1
+            step += 1
+            if step > burn and (step - burn) % thin == 0:
+                for i in range(q):
+                    out[rec, i] = T[i]
+                rec += 1
+
+
+def bounded_draws(object bit_generator, uint32_t bound, int64_t n):
+    """Sum of `n` bounded draws in a nogil loop: the unit of cost for the sampler benchmarks."""
+    cdef bitgen_t *bg = _bitgen(bit_generator)
+    cdef int64_t i
+    cdef uint64_t total = 0
+    with bit_generator.lock, nogil:
+        for i in range(n):
+            total += draw_bounded(bg, bound)
+    return total
