@@ -294,10 +294,11 @@ def compile_design(design, order: np.ndarray | None = None) -> StageProblem:
             "the interest covariates", what="key_space", reached=min(vsize, 2**63 - 1),
             limit=KEY_LIMIT)
 
+    log_fact = gammaln(np.arange(int(trials.max(initial=0)) + 2) + 1.0)
     log_binom = []
     for m in trials:
         y = np.arange(m + 1)
-        log_binom.append(gammaln(m + 1.0) - gammaln(y + 1.0) - gammaln(m - y + 1.0))
+        log_binom.append(log_fact[m] - log_fact[y] - log_fact[m - y])
 
     return StageProblem(
         trials=trials, nuisance=np.ascontiguousarray(W), interest=np.ascontiguousarray(Z),

@@ -80,6 +80,7 @@ class NuisanceNetwork:
     log_b: list
     stage_nodes: list
     seconds: float = 0.0
+    _ranges: tuple | None = field(default=None, repr=False)
 
     @property
     def n_nodes(self) -> int:
@@ -112,62 +113,16 @@ def build_nuisance_network(problem: StageProblem, max_nodes: int) -> NuisanceNet
     """Grow the nuisance network forward with bound pruning, then prune it backward exactly."""
     t0 = time.perf_counter()
     K = problem.n_stages
-    p = problem.nuisance.shape[1]
-    comp = np.zeros((1, 1 + p), dtype=np.int64)
-    fwd_ptr, fwd_succ, fwd_y, counts = [], [], [], [1]
-    total = 1
     max_arcs = ARCS_PER_NODE * max_nodes
-    total_arcs = 0
-    for k in range(K):
-        status, nxt, ptr, succ, ys = _network.expand_nuisance_stage(
-            comp, int(problem.trials[k]), problem.nuisance[k], problem.fixed,
-            int(problem.c_target[k]), bool(problem.stratum_end[k]), int(problem.rem_trials[k]),
-            problem.s, problem.later_lo[k], problem.later_hi[k], problem.rem_lo[k],
-            problem.rem_hi[k], problem.unit_min[k], problem.unit_max[k], problem.u_stride,
-            problem.u_lo, 1, max_nodes - total, max_arcs - total_arcs)
-        if status != _network.STATUS_OK:
-            reached = total + nxt if status == _network.STATUS_NODE_BUDGET else total_arcs + succ
-            limit = max_nodes if status == _network.STATUS_NODE_BUDGET else max_arcs
-            _raise_budget("nuisance", status, reached, limit, k + 1, K)
-        fwd_ptr.append(ptr)
-        fwd_succ.append(succ)
-        fwd_y.append(ys)
-        comp = nxt
-        counts.append(nxt.shape[0])
-        total += nxt.shape[0]
-        total_arcs += succ.shape[0]
-    if comp.shape[0] != 1:
-        raise AssertionError("mcexact internal error: the nuisance network did not close on S")
-
-    # Backward: completion weights, then drop dead nodes and renumber stage by stage.
-    log_b_next = np.zeros(1)
-    alive_map_next = np.zeros(1, dtype=np.int64)
-    arc_ptr, arc_succ, arc_y, arc_logp, log_b = [None] * K, [None] * K, [None] * K, [None] * K, [None] * (K + 1)
-    log_b[K] = log_b_next
-    stage_nodes = [0] * (K + 1)
-    stage_nodes[K] = 1
-    for k in range(K - 1, -1, -1):
-        ptr, succ, ys = fwd_ptr[k], fwd_succ[k], fwd_y[k]
-        new_succ = alive_map_next[succ]
-        succ_lb = np.where(new_succ >= 0, log_b_next[np.maximum(new_succ, 0)], -np.inf)
-        lb = _network.backward_stage(ptr, np.arange(succ.shape[0], dtype=np.int32), ys,
-                                     succ_lb, problem.log_binom[k])
-        alive = np.isfinite(lb)
-        owner = np.repeat(np.arange(ptr.shape[0] - 1), np.diff(ptr))
-        keep = alive[owner] & (new_succ >= 0)
-        alive_map = np.full(alive.shape[0], -1, dtype=np.int64)
-        alive_map[alive] = np.arange(int(alive.sum()))
-        kept_owner = alive_map[owner[keep]]
-        lb_alive = lb[alive]
-        ptr_new = np.zeros(lb_alive.shape[0] + 1, dtype=np.int64)
-        np.cumsum(np.bincount(kept_owner, minlength=lb_alive.shape[0]), out=ptr_new[1:])
-        succ_new = new_succ[keep].astype(np.int32)
-        y_new = ys[keep]
-        arc_ptr[k], arc_succ[k], arc_y[k] = ptr_new, succ_new, y_new
-        arc_logp[k] = problem.log_binom[k][y_new] + log_b_next[succ_new] - lb_alive[kept_owner]
-        log_b[k] = lb_alive
-        stage_nodes[k] = int(lb_alive.shape[0])
-        log_b_next, alive_map_next = lb_alive, alive_map
+    (status, stage, reached), arc_ptr, arc_succ, arc_y, arc_logp, log_b, stage_nodes = \
+        _network.build_nuisance(
+            problem.trials, problem.nuisance, problem.fixed, problem.c_target,
+            problem.stratum_end.view(np.uint8), problem.rem_trials, problem.s, problem.later_lo,
+            problem.later_hi, problem.rem_lo, problem.rem_hi, problem.unit_min, problem.unit_max,
+            problem.u_stride, problem.u_lo, problem.log_binom, max_nodes, max_arcs)
+    if status != _network.STATUS_OK:
+        limit = max_arcs if status == _network.STATUS_ARC_BUDGET else max_nodes
+        _raise_budget("nuisance", status, reached, limit, stage, K)
     if stage_nodes[0] != 1:
         raise AssertionError("mcexact internal error: the observed response is not in the network")
     return NuisanceNetwork(problem, arc_ptr, arc_succ, arc_y, arc_logp, log_b, stage_nodes,
@@ -176,16 +131,17 @@ def build_nuisance_network(problem: StageProblem, max_nodes: int) -> NuisanceNet
 
 def interest_ranges(net: NuisanceNetwork) -> list[tuple[np.ndarray, np.ndarray]]:
     """Least and greatest coded interest partial sums at every node of every stage."""
-    prob = net.problem
-    q = prob.interest.shape[1]
-    lo = np.zeros((1, q), dtype=np.int64)
-    hi = np.zeros((1, q), dtype=np.int64)
-    out = [(lo, hi)]
-    for k in range(prob.n_stages):
-        lo, hi = _network.minmax_stage(lo, hi, net.arc_ptr[k], net.arc_succ[k], net.arc_y[k],
-                                       prob.interest[k], net.stage_nodes[k + 1])
-        out.append((lo, hi))
-    return out
+    los, his, _ = _ranges(net)
+    return list(zip(los, his))
+
+
+def _ranges(net: NuisanceNetwork):
+    """(least sums, greatest sums, box slots per stage), computed once per network."""
+    if net._ranges is None:
+        prob = net.problem
+        net._ranges = _network.interest_ranges_all(net.arc_ptr, net.arc_succ, net.arc_y,
+                                                   prob.interest, net.stage_nodes)
+    return net._ranges
 
 
 @dataclass(frozen=True)
@@ -270,11 +226,9 @@ def plan(design, *, max_nodes: int | None = None, order=None) -> Plan:
                     False, False, None, None,
                     f"the nuisance network exceeds the budget ({exc.reached:,} nodes, arcs or "
                     f"key values reached{where})", time.perf_counter() - t0, _design_key=key)
-    ranges = interest_ranges(net)
-    stage_sizes = np.array([float(np.prod((hi - lo + 1).astype(float), axis=1).sum())
-                            for lo, hi in ranges])
+    los, his, stage_sizes = _ranges(net)
     peak, total_est = float(stage_sizes.max()), float(stage_sizes.sum())
-    lo_final, hi_final = ranges[-1]
+    lo_final, hi_final = los[-1], his[-1]
     step, offset = problem.interest_step, problem.interest_offset
     fits_full = peak <= budget
     reason = (f"nuisance network of {net.n_nodes:,} nodes; full network estimated at most "
@@ -324,10 +278,8 @@ def exact_distribution(design, *, max_nodes: int | None = None, order=None,
     else:
         net = build_nuisance_network(compile_design(design, order), budget)
     prob = net.problem
-    ranges = interest_ranges(net)
-    box_slots = [float(np.prod((hi - lo + 1).astype(float), axis=1).sum()) for lo, hi in ranges]
-    if max(box_slots) <= DENSE_SLOTS_PER_NODE * budget:
-        support_coded, log_p, total, peak = _full_dense(net, ranges)
+    if float(_ranges(net)[2].max()) <= DENSE_SLOTS_PER_NODE * budget:
+        support_coded, log_p, total, peak = _full_dense(net)
         layout = "dense"
     else:
         support_coded, log_p, total, peak = _full_hashed(net, budget)
@@ -353,37 +305,17 @@ def exact_distribution(design, *, max_nodes: int | None = None, order=None,
         info=info)
 
 
-def _strides(width: np.ndarray) -> np.ndarray:
-    """Mixed-radix strides of each row's box (first column fastest)."""
+def _full_dense(net: NuisanceNetwork):
+    """Full network on direct-addressed blocks (``_network.full_dense``)."""
+    los, his, _ = _ranges(net)
+    log_p, total, peak = _network.full_dense(los, his, net.arc_ptr, net.arc_succ, net.arc_y,
+                                             net.arc_logp, net.problem.interest)
+    width = his[-1][0] - los[-1][0] + 1
     stride = np.ones_like(width)
-    if width.shape[1] > 1:
-        stride[:, 1:] = np.cumprod(width[:, :-1], axis=1)
-    return stride
-
-
-def _full_dense(net: NuisanceNetwork, ranges):
-    """Full network on direct-addressed blocks (``forward_dense_stage``)."""
-    prob = net.problem
-    lo, hi = ranges[0]
-    width = hi - lo + 1
-    offset = np.array([0, 1], dtype=np.int64)
-    log_p = np.zeros(1)
-    total = peak = 1
-    for k in range(prob.n_stages):
-        nlo, nhi = ranges[k + 1]
-        nwidth = nhi - nlo + 1
-        noffset = np.zeros(nwidth.shape[0] + 1, dtype=np.int64)
-        np.cumsum(np.prod(nwidth, axis=1), out=noffset[1:])
-        log_p = _network.forward_dense_stage(
-            log_p, offset, lo, width, noffset, nlo, _strides(nwidth), net.arc_ptr[k],
-            net.arc_succ[k], net.arc_y[k], net.arc_logp[k], prob.interest[k])
-        lo, width, offset = nlo, nwidth, noffset
-        live = int(np.count_nonzero(log_p > -np.inf))
-        total += live
-        peak = max(peak, live)
+    stride[1:] = np.cumprod(width[:-1])
     slots = np.flatnonzero(log_p > -np.inf)
-    digits = (slots[:, None] // _strides(width)[0]) % width[0]
-    return lo[0] + digits, log_p[slots], total, peak
+    digits = (slots[:, None] // stride) % width
+    return los[-1][0] + digits, log_p[slots], int(total), int(peak)
 
 
 def _full_hashed(net: NuisanceNetwork, budget: int):
