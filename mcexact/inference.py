@@ -319,7 +319,10 @@ def _sup_loglik(targets: np.ndarray, T: np.ndarray, lw: np.ndarray,
 
     Damped Newton on the concave objective, optionally warm-started at `start`. At a boundary
     point of the support's hull the supremum is a limit at infinite b, which damped Newton
-    approaches geometrically (the cap keeps b finite, with an error below exp(-_BETA_CAP)).
+    approaches geometrically; the cap keeps b finite, leaving an error of about
+    exp(-_BETA_CAP * gap), gap being how far the next support point lies behind the target along
+    the maximising direction (standardised units). Hull vertices, where the limit is known
+    exactly, are therefore set apart by the callers (`_hull_vertices`).
 
     Returns
     -------
@@ -427,7 +430,25 @@ def _level_set(Tz: np.ndarray, lw: np.ndarray, level: float) -> tuple[np.ndarray
     return points, lo[:, None] * rays
 
 
-def _lr_statistics(Tz: np.ndarray, lw: np.ndarray, obs: int) -> np.ndarray:
+def _hull_vertices(Tz: np.ndarray) -> np.ndarray:
+    """Indices of the support points that are vertices of the support's convex hull.
+
+    At a vertex u the tilted distributions pile up on u as b grows along the vertex's normal cone,
+    so ``sup_b log f_b(u) = 0`` exactly and ``S(u) = -log c(u)``: a maximisation would only
+    approach this limit, and vertices of equal weight must tie exactly.
+    """
+    if Tz.shape[1] == 1:
+        return np.unique([int(Tz[:, 0].argmin()), int(Tz[:, 0].argmax())])
+    from scipy.spatial import ConvexHull, QhullError
+
+    try:
+        return np.asarray(ConvexHull(Tz).vertices, dtype=np.int64)
+    except (QhullError, ValueError):      # a flat support: no full-dimensional hull
+        return np.zeros(0, dtype=np.int64)
+
+
+def _lr_statistics(Tz: np.ndarray, lw: np.ndarray, obs: int,
+                   vertices: np.ndarray | None = None) -> np.ndarray:
     """Per support point, a value ordered against the observed one as ``S(u)`` is (`_sup_loglik`).
 
     Small supports get ``S(u)`` at every point. On larger ones the observed value's level set
@@ -440,10 +461,15 @@ def _lr_statistics(Tz: np.ndarray, lw: np.ndarray, obs: int) -> np.ndarray:
     The p-value only needs this order, so it stays exact while few points need a maximisation.
     """
     n, q = Tz.shape
+    vertices = np.zeros(0, dtype=np.int64) if vertices is None else vertices
     if n <= _LR_DIRECT_POINTS or q > _LR_MAX_BOUNDED_COLUMNS:
-        return _sup_loglik(Tz, Tz, lw)[0]
+        out = _sup_loglik(Tz, Tz, lw)[0]
+        out[vertices] = -lw[vertices]
+        return out
     s_obs, b_obs = _sup_loglik(Tz[[obs]], Tz, lw)
     s_obs = float(s_obs[0])
+    if obs in set(vertices.tolist()):
+        s_obs = float(-lw[obs])
     tol = TIE_RTOL * max(abs(s_obs + logsumexp(lw)), 1e-300)
     points, betas = _level_set(Tz, lw, s_obs)
     betas = np.vstack([betas, b_obs])
@@ -469,6 +495,7 @@ def _lr_statistics(Tz: np.ndarray, lw: np.ndarray, obs: int) -> np.ndarray:
     idx = np.flatnonzero(open_)
     if idx.size:
         out[idx] = _sup_loglik(Tz[idx], Tz, lw)[0]
+    out[vertices] = -lw[vertices]
     out[obs] = s_obs
     return out
 
@@ -489,7 +516,8 @@ def joint_tests(dist: ConditionalDistribution,
     if dist.n_points == 1:
         note = ("the statistic has a single possible value given the nuisance statistics: "
                 "no test is possible")
-        return [TestResult(name, np.nan, 1.0, 1.0, q, note) for name in tests]
+        # Every outcome ties with the observed one: p = 1 and Lancaster's mid-p = 1/2.
+        return [TestResult(name, np.nan, 1.0, 0.5, q, note) for name in tests]
     Tz, tz, lw, p0, _ = _standardise(dist)
     log_p0 = lw - logsumexp(lw)
     obs = dist.observed_index
@@ -522,12 +550,9 @@ def joint_tests(dist: ConditionalDistribution,
         return results
 
     # Likelihood-ratio test.
-    G = 2.0 * (_lr_statistics(Tz, lw, obs) + logsumexp(lw))
-    if q == 1:
-        # The two extreme points' supremum is the limit 0 (the tilted distribution piles up on
-        # them), so G = -2 log f0 there exactly.
-        ends = [int(Tz[:, 0].argmin()), int(Tz[:, 0].argmax())]
-        G[ends] = -2.0 * log_p0[ends]
+    live = np.isfinite(lw)
+    vertices = np.flatnonzero(live)[_hull_vertices(Tz[live])]
+    G = 2.0 * (_lr_statistics(Tz, lw, obs, vertices) + logsumexp(lw))
     G = np.maximum(G, 0.0)
     g_obs = float(G[obs]) if obs is not None else np.nan
     results.append(_result("likelihood_ratio", g_obs, *_masks(G, g_obs), p0, q))

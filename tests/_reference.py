@@ -191,3 +191,41 @@ def dictionary_counts(events, trials, stratum, interest, nuisance, fix_stratum_t
 def space_size(trials):
     """Number of response vectors :func:`grouped_counts` would visit."""
     return math.prod(int(m) + 1 for m in trials)
+
+
+def split_counts(y, interest, nuisance=None):
+    """The counts of :func:`binary_counts` (0/1 rows, one intercept), meeting in the middle.
+
+    For binary designs with too many rows to list all ``2**n`` vectors and too many distinct
+    nuisance sums for :func:`dictionary_counts` (e.g. a covariate with two decimals scaled by 100).
+    The rows are split into two halves; every 0/1 vector of each half is listed (``2**(n/2)``
+    each) with its number of events, nuisance sums and interest sums.  A full vector is in the
+    fiber exactly when the two halves' events and nuisance sums add up to the observed ones, so
+    the second half is indexed by (events, nuisance sums) and each first-half vector is paired
+    with the complementary entries.  Exact Python integers throughout.
+    """
+    y = [int(v) for v in y]
+    if any(v not in (0, 1) for v in y):
+        raise ValueError("split_counts needs 0/1 responses")
+    n = len(y)
+    Z = _rows(interest, n)
+    W = _rows(nuisance, n)
+    target = (sum(y),) + _dot(W, y)
+
+    def half(rows):
+        listed = defaultdict(lambda: defaultdict(int))
+        for pattern in itertools.product((0, 1), repeat=len(rows)):
+            key = (sum(pattern),) + _dot([W[i] for i in rows], pattern)
+            listed[key][_dot([Z[i] for i in rows], pattern)] += 1
+        return listed
+
+    first, second = half(range(n // 2)), half(range(n // 2, n))
+    counts = defaultdict(int)
+    for key, by_t in first.items():
+        rest = second.get(tuple(a - b for a, b in zip(target, key)))
+        if rest is None:
+            continue
+        for t1, c1 in by_t.items():
+            for t2, c2 in rest.items():
+                counts[tuple(a + b for a, b in zip(t1, t2))] += c1 * c2
+    return dict(counts)
