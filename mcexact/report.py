@@ -45,7 +45,8 @@ def text_report(result) -> str:
 
     d = result.design
     level = f"{100 * (1 - result.alpha):g}%"
-    lines = ["mcexact: exact conditional logistic regression", "=" * 46]
+    title = "mcexact: conditional logistic regression (exact and Monte Carlo)"
+    lines = [title, "=" * len(title)]
     strata = (f"{d.n_strata} strata ({d.strata_name})" if d.strata_name else "no strata")
     lines.append(f"Data       {d.n_rows:,} rows in {d.n_groups:,} covariate groups, {strata}; "
                  f"{d.n_dropped_strata} uninformative strata dropped ({d.n_dropped_rows} rows)")
@@ -80,7 +81,8 @@ def text_report(result) -> str:
         lines.append(_wrap("MC error: Monte Carlo standard error of the p-value (0 for exact "
                            "rows); Monte Carlo p-values are estimates."))
 
-    lines += ["", f"Estimates per original unit, exact {level} limits"]
+    lines += ["", f"Estimates per original unit, exact {level} limits"
+              + (" (Monte Carlo estimates where the engine is not exact)" if monte_carlo else "")]
     columns = {"term": "term", "estimate": "estimate", "kind": "kind", "ci_lower": "lower",
                "ci_upper": "upper", "odds_ratio": "odds ratio", "or_ci_lower": "OR lower",
                "or_ci_upper": "OR upper"}
