@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import json
 import math
+import sys
+import time
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -21,8 +23,7 @@ from mcexact.design import Design
 from mcexact.distribution import ConditionalDistribution
 from mcexact.exact import exact_distribution, plan
 from mcexact.inference import column_inference, joint_cmle, joint_tests
-from mcexact.montecarlo import (SamplerOptions, draw_direct, draw_mcmc, mcse_of_indicator,
-                                spawn_seeds)
+from mcexact.montecarlo import PartSampler, SamplerOptions, mcse_of_indicator, spawn_seeds
 
 __all__ = ["fit", "FitResult", "METHODS", "CAUTION"]
 
@@ -160,7 +161,72 @@ def _check_options(method, alpha):
         raise DataError(f"alpha must be a number strictly between 0 and 1; got {alpha!r}")
 
 
-def _conditional(design: Design, method: str, max_nodes, options: SamplerOptions, seed, what):
+@dataclass(frozen=True)
+class Precision:
+    """When to stop sampling: after ``n_draws`` draws, or, with ``target_mcse`` and/or
+    ``time_budget``, in rounds until every monitored p-value's Monte Carlo error is at most
+    ``target_mcse``, the time budget (seconds, per part) is spent, or ``max_draws`` is reached."""
+
+    n_draws: int
+    target_mcse: float | None = None
+    time_budget: float | None = None
+    max_draws: int | None = None
+    progress: bool = False
+
+
+def _monitored_mcse(dist: ConditionalDistribution) -> float:
+    """Largest Monte Carlo error among a distribution's test p-values and one-sided tails, as
+    reported in the result frames."""
+    errors = [row["mcse"] for row in _test_rows("", dist, "")]
+    if dist.n_columns == 1:
+        col, t = dist.support[:, 0], int(dist.observed[0])
+        errors += [mcse_of_indicator(dist, (col <= t).astype(float)),
+                   mcse_of_indicator(dist, (col >= t).astype(float))]
+    return float(np.nanmax(errors)) if np.any(np.isfinite(errors)) else np.nan
+
+
+def _sample_to_precision(sampler: PartSampler, precision: Precision, what: str):
+    """Run `sampler` for the requested draws or to the requested precision (in rounds)."""
+    sample = sampler.run(precision.n_draws)
+    if precision.target_mcse is None and precision.time_budget is None:
+        return sample, "the requested number of draws"
+    t0 = time.perf_counter()
+    limit = precision.max_draws or 50 * precision.n_draws
+    bar = None
+    if precision.progress:
+        from tqdm.auto import tqdm
+
+        bar = tqdm(total=limit, initial=sample.n_draws, desc=f"sampling {what}", unit="draw",
+                   leave=False)
+    try:
+        while True:
+            n = sample.n_draws
+            worst = _monitored_mcse(sample.to_distribution())
+            if precision.target_mcse is not None and worst <= precision.target_mcse:
+                return sample, f"target Monte Carlo error {precision.target_mcse:g} reached"
+            elapsed = time.perf_counter() - t0
+            if precision.time_budget is not None and elapsed >= precision.time_budget:
+                return sample, f"time budget of {precision.time_budget:g} s spent"
+            if n >= limit:
+                return sample, f"draw limit of {limit:,} reached"
+            # Draws for the target by the 1/sqrt(N) law, at least a quarter more, at most double.
+            more = n
+            if precision.target_mcse is not None and np.isfinite(worst):
+                more = int(n * ((worst / precision.target_mcse) ** 2 - 1) * 1.1)
+            more = int(min(max(more, n // 4, 1), n, limit - n))
+            if precision.time_budget is not None and elapsed > 0:
+                rate = n / max(sample.seconds, 1e-9)
+                more = int(max(1, min(more, rate * (precision.time_budget - elapsed))))
+            sample = sampler.run(more)
+            if bar is not None:
+                bar.update(sample.n_draws - n)
+    finally:
+        if bar is not None:
+            bar.close()
+
+
+def _conditional(design: Design, method: str, max_nodes, options: SamplerOptions, seed, what,
+                 precision: Precision):
     """The conditional distribution of `design`'s interest statistics by the engine `method`
     selects, with a record of the engine and the reason."""
     p = plan(design, max_nodes=max_nodes)
@@ -190,18 +256,17 @@ def _conditional(design: Design, method: str, max_nodes, options: SamplerOptions
                 raise
             engine = "direct"
             info["reason"] = "the full network exceeded the budget while being built"
-    if engine == "direct":
-        if not p.fits_nuisance:
-            raise BudgetExceeded(f"mcexact: direct sampling of {what} needs the nuisance network, "
-                                 f"which does not fit: {p.reason}; use method='mcmc'",
-                                 what="nuisance", reached=int(p.nuisance_reached or 0),
-                                 limit=p.max_nodes)
-        sample = draw_direct(p._network, design, options, seed.spawn(options.n_chains))
+    if engine == "direct" and not p.fits_nuisance:
+        raise BudgetExceeded(f"mcexact: direct sampling of {what} needs the nuisance network, "
+                             f"which does not fit: {p.reason}; use method='mcmc'",
+                             what="nuisance", reached=int(p.nuisance_reached or 0),
+                             limit=p.max_nodes)
+    if engine in ("direct", "mcmc"):
+        sampler = PartSampler(design, engine, options, seed, net=p._network)
+        sample, stop = _sample_to_precision(sampler, precision, what)
         dist = sample.to_distribution()
-        info["seconds"] = sample.seconds
-    elif engine == "mcmc":
-        sample = draw_mcmc(design, options, seed.spawn(options.n_chains))
-        dist = sample.to_distribution()
+        info.update(seconds=sample.seconds, stopped=stop)
+    if engine == "mcmc":
         moves = sum(int(c[0]) for c in sample.counters)
         info.update(seconds=sample.seconds, move=sample.info["move"],
                     block_size=sample.info["block_size"],
@@ -322,7 +387,9 @@ def fit(data, formula: str | None = None, *, interest=None, strata: str | None =
         max_nodes: int | None = None, decimals: int = 6, asymptotic: bool = True,
         n_draws: int = 20_000, n_chains: int = 4, n_warmup: int = 1_000, thin: int = 10,
         block_size: int | None = None, rng=None, n_jobs: int = 1,
-        backend: str | None = None) -> FitResult:
+        backend: str | None = None, target_mcse: float | None = None,
+        time_budget: float | None = None, max_draws: int | None = None,
+        progress: bool | None = None) -> FitResult:
     """Exact conditional logistic regression: tests, estimates and limits for the interest terms.
 
     Parameters
@@ -354,6 +421,12 @@ def fit(data, formula: str | None = None, *, interest=None, strata: str | None =
         Monte Carlo settings (see :class:`mcexact.montecarlo.SamplerOptions`): draws in all per
         part of the analysis, chains, Markov chain moves discarded at the start and between
         records, groups per block move, parallel jobs and joblib backend.
+    target_mcse, time_budget, max_draws : optional
+        Sample in rounds until every Monte Carlo p-value's standard error is at most
+        `target_mcse`, `time_budget` seconds are spent on a part, or `max_draws` draws (default
+        50 times `n_draws`) are reached; ``result.method["parts"][part]["stopped"]`` says which.
+    progress : bool, optional
+        Progress bar while sampling in rounds (default: when standard error is a terminal).
     rng : None, int, SeedSequence or Generator
         Source of random numbers (SPEC 7). Results are identical for the same `rng` whatever
         `n_jobs` and `backend`; without it, the fresh entropy drawn is recorded in
@@ -383,6 +456,15 @@ def fit(data, formula: str | None = None, *, interest=None, strata: str | None =
     alpha = float(alpha)
     options = SamplerOptions(n_draws=n_draws, n_chains=n_chains, n_warmup=n_warmup, thin=thin,
                              block_size=block_size, n_jobs=n_jobs, backend=backend)
+    for name, value in (("target_mcse", target_mcse), ("time_budget", time_budget)):
+        if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))
+                                  or not value > 0):
+            raise DataError(f"{name} must be a positive number, got {value!r}")
+    if max_draws is not None and (isinstance(max_draws, bool) or not isinstance(max_draws, int)
+                                  or max_draws < n_draws):
+        raise DataError(f"max_draws must be an integer >= n_draws, got {max_draws!r}")
+    precision = Precision(n_draws, target_mcse, time_budget, max_draws,
+                          sys.stderr.isatty() if progress is None else bool(progress))
     if isinstance(data, Design):
         if formula is not None or interest is not None or strata is not None or trials is not None:
             raise DataError("pass formula, interest, strata and trials only with a data frame, "
@@ -406,7 +488,8 @@ def fit(data, formula: str | None = None, *, interest=None, strata: str | None =
     effect_dists, parts = {}, {}
     for (effect, cols), seed in zip(effects.items(), seeds):
         sub = design if len(effects) == 1 else design.with_interest([effect])
-        dist, info = _conditional(sub, method, max_nodes, options, seed, f"effect {effect!r}")
+        dist, info = _conditional(sub, method, max_nodes, options, seed, f"effect {effect!r}",
+                                  precision)
         parts[effect] = info
         effect_dists[effect] = dist
         test_rows += _test_rows(effect, dist, info["engine"])
@@ -424,7 +507,7 @@ def fit(data, formula: str | None = None, *, interest=None, strata: str | None =
     else:
         try:
             joint, info = _conditional(design, method, max_nodes, options, seeds[-1],
-                                       "the joint test")
+                                       "the joint test", precision)
             parts["joint"] = info
         except BudgetExceeded as exc:
             joint = None
@@ -455,7 +538,8 @@ def fit(data, formula: str | None = None, *, interest=None, strata: str | None =
         "parts": parts,
         "options": {"n_draws": n_draws, "n_chains": n_chains, "n_warmup": n_warmup,
                     "thin": thin, "block_size": block_size, "n_jobs": n_jobs,
-                    "backend": backend, "max_nodes": max_nodes},
+                    "backend": backend, "max_nodes": max_nodes, "target_mcse": target_mcse,
+                    "time_budget": time_budget, "max_draws": max_draws},
         "rng": _rng_record(root),
     }
     comparison = asymptotic_fit(design) if asymptotic else None

@@ -146,6 +146,18 @@ class Sample:
     def n_draws(self) -> int:
         return int(sum(c.shape[0] for c in self.chains))
 
+    def append(self, more: "Sample") -> "Sample":
+        """This sample followed by `more` (its continuation): chains joined draw by draw."""
+        if more.engine != self.engine or len(more.chains) != len(self.chains):
+            raise DataError("only a continuation of the same chains can be appended")
+        counters = ([a + b for a, b in zip(self.counters, more.counters)]
+                    if self.counters else list(more.counters))
+        return Sample(self.engine, [np.concatenate([a, b]) for a, b in zip(self.chains, more.chains)],
+                      self.observed, self.names, self.scales, self.log_total, self.support_min,
+                      self.support_max, self.beta, counters, more.states,
+                      self.seconds + more.seconds, self.null_mean, self.null_cov,
+                      {**self.info, **more.info, "n_warmup": self.info.get("n_warmup")})
+
     def to_distribution(self) -> ConditionalDistribution:
         """The sampled distribution: support = values drawn (plus the observed value), weights =
         relative frequencies (times the total count when it is known), draws kept per chain."""
@@ -253,13 +265,17 @@ def null_moments(net) -> tuple[np.ndarray, np.ndarray]:
     return mean * step + prob.interest_offset, cov * np.outer(step, step)
 
 
-def _direct_worker(flat, z, n, seed):
+def _direct_worker(flat, z, n, seed, state=None):
+    bg = np.random.PCG64(seed)
+    if state is not None:
+        bg.state = state
     out = np.empty((n, z.shape[1]), dtype=np.int64)
-    _sampler.direct_draws(np.random.PCG64(seed), *flat, z, out)
-    return out
+    _sampler.direct_draws(bg, *flat, z, out)
+    return out, bg.state
 
 
-def draw_direct(net, design, options: SamplerOptions, seeds, beta=None) -> Sample:
+def draw_direct(net, design, options: SamplerOptions, seeds, beta=None,
+                continue_from: "Sample | None" = None) -> Sample:
     """Independent draws of T from the nuisance network `net` of `design`.
 
     Parameters
@@ -268,6 +284,9 @@ def draw_direct(net, design, options: SamplerOptions, seeds, beta=None) -> Sampl
         From :func:`mcexact.exact.build_nuisance_network` (or a plan).
     beta : array, optional
         Tilt on the coded scale of the user's integer statistics (as ``ConditionalDistribution``).
+    continue_from : Sample, optional
+        An earlier direct sample of the same design and tilt: its streams are continued, so the
+        draws equal those of one longer run.
     """
     t0 = time.perf_counter()
     prob = net.problem
@@ -280,9 +299,12 @@ def draw_direct(net, design, options: SamplerOptions, seeds, beta=None) -> Sampl
     flat = _flatten(net, arc_logp)
     z = np.ascontiguousarray(prob.interest, dtype=np.int64)
     sizes = options.per_chain()
-    chains = Parallel(n_jobs=options.n_jobs, backend=options.backend, prefer="threads")(
-        delayed(_direct_worker)(flat, z, n, seed) for n, seed in zip(sizes, seeds))
-    chains = [c * prob.interest_step + prob.interest_offset for c in chains]
+    states = ([s["bit_generator"] for s in continue_from.states] if continue_from is not None
+              else [None] * len(sizes))
+    results = Parallel(n_jobs=options.n_jobs, backend=options.backend, prefer="threads")(
+        delayed(_direct_worker)(flat, z, n, seed, st)
+        for n, seed, st in zip(sizes, seeds, states))
+    chains = [r[0] * prob.interest_step + prob.interest_offset for r in results]
     from mcexact.exact import interest_ranges
 
     lo, hi = interest_ranges(net)[-1]
@@ -291,6 +313,7 @@ def draw_direct(net, design, options: SamplerOptions, seeds, beta=None) -> Sampl
                   tuple(design.interest_names), np.asarray(design.interest_scales, float),
                   log_total=net.log_total, support_min=lo[0] * prob.interest_step + prob.interest_offset,
                   support_max=hi[0] * prob.interest_step + prob.interest_offset, beta=beta_arr,
+                  states=[{"bit_generator": r[1]} for r in results],
                   seconds=time.perf_counter() - t0, null_mean=mean, null_cov=cov,
                   info={"nuisance_nodes": net.n_nodes, "nuisance_arcs": net.n_arcs})
 
@@ -409,3 +432,46 @@ def mcse_of_indicator(dist: ConditionalDistribution, values: np.ndarray) -> floa
     sigma2 = b * np.sum((means - grand) ** 2) / (means.shape[0] - 1)
     return float(np.sqrt(max(sigma2, floor) / N))
 
+
+
+class PartSampler:
+    """Draws for one design by one engine, extendable exactly: ``run(n)`` adds n draws in all
+    (shared by the chains), continuing every chain's state, so any split into rounds gives the
+    draws of one uninterrupted run.
+
+    Parameters
+    ----------
+    design : Design
+    engine : {"direct", "mcmc"}
+    options : SamplerOptions
+        ``n_draws`` there is ignored; ``run`` says how many.
+    seed : SeedSequence
+        Spawned into one child per chain.
+    net : NuisanceNetwork, optional
+        Needed by the direct engine.
+    beta : array, optional
+        Tilt (coded scale of the user's integer statistics).
+    """
+
+    def __init__(self, design, engine: str, options: SamplerOptions, seed, net=None, beta=None):
+        if engine not in ENGINES:
+            raise DataError(f"engine must be one of {ENGINES}, got {engine!r}")
+        if engine == "direct" and net is None:
+            raise DataError("the direct engine needs the nuisance network")
+        self.design, self.engine, self.options, self.net, self.beta = design, engine, options, net, beta
+        self.seeds = seed.spawn(options.n_chains)
+        self.sample: Sample | None = None
+
+    def run(self, n_draws: int) -> Sample:
+        """Add `n_draws` draws (in all) and return the whole sample so far."""
+        import dataclasses
+
+        opts = dataclasses.replace(self.options, n_draws=int(max(n_draws, self.options.n_chains)))
+        if self.engine == "direct":
+            more = draw_direct(self.net, self.design, opts, self.seeds, beta=self.beta,
+                               continue_from=self.sample)
+        else:
+            more = draw_mcmc(self.design, opts, self.seeds, beta=self.beta,
+                             continue_from=self.sample)
+        self.sample = more if self.sample is None else self.sample.append(more)
+        return self.sample
