@@ -1,0 +1,745 @@
+"""Figures of conditional distributions and of the Monte Carlo draws behind them.
+
+Every function takes a :class:`~mcexact.distribution.ConditionalDistribution` and returns a
+:class:`matplotlib.figure.Figure` built with the object-oriented API; nothing is shown or saved,
+and no pyplot state is touched (call ``fig.savefig(...)``, or display the figure in a notebook).
+matplotlib is imported only when a function is called, so ``import mcexact`` works without it.
+
+- :func:`plot_trace`: the drawn statistic along each chain.
+- :func:`plot_running_pvalue`: a Monte Carlo p-value as draws accumulate, with its error band.
+- :func:`plot_autocorrelation`: autocorrelation of the drawn statistic within each chain.
+- :func:`plot_null_distribution`: the conditional probabilities of one statistic, with the
+  observed value and its tail.
+- :func:`plot_joint`: two statistics at once, as a grid of log probabilities.
+
+Statistics are shown in the user's units: a support value on the coded integer scale is divided
+by the column's ``scales`` entry, so an axis reads as the sum of the covariate over the events.
+"""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING, Sequence
+
+import numpy as np
+from scipy.special import logsumexp
+
+from mcexact._exceptions import DataError
+from mcexact.distribution import ConditionalDistribution
+from mcexact.inference import TIE_RTOL
+
+if TYPE_CHECKING:
+    from matplotlib.figure import Figure
+
+__all__ = [
+    "plot_trace",
+    "plot_running_pvalue",
+    "plot_autocorrelation",
+    "plot_null_distribution",
+    "plot_joint",
+]
+
+# Colours of this module (colour-blind-safe choices from the Okabe & Ito 2008 palette).
+_CHAIN_COLOURS = ("#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00", "#F0E442",
+                  "#000000")
+_BAR_COLOUR = "#9DB4C8"
+_TAIL_COLOUR = "#D55E00"
+_OBSERVED_COLOUR = "#4B0F6B"
+_EXACT_COLOUR = "#009E73"
+
+# Curves of running estimates are evaluated at no more than this many draw counts: more points
+# than a figure can show, and it keeps the batch-means band cheap for runs of millions of draws.
+_MAX_CURVE_POINTS = 2000
+
+
+# -- shared helpers -------------------------------------------------------------------------------
+
+def _new_figure(figsize: tuple[float, float]) -> "Figure":
+    """A figure with constrained layout, importing matplotlib only now."""
+    try:
+        from matplotlib.figure import Figure
+    except ImportError as exc:
+        raise DataError("mcexact.plots needs matplotlib, which is not installed "
+                        "(pip install matplotlib)") from exc
+    return Figure(figsize=figsize, layout="constrained")
+
+
+def _check_distribution(dist) -> ConditionalDistribution:
+    if not isinstance(dist, ConditionalDistribution):
+        raise DataError(f"dist must be a ConditionalDistribution, got {type(dist).__name__}")
+    return dist
+
+
+def _needs_draws(dist: ConditionalDistribution, what: str) -> None:
+    if not dist.is_monte_carlo:
+        raise DataError(f"{what} needs a Monte Carlo distribution (one with draws); this "
+                        "distribution is exact and has no chains")
+    if dist.n_draws == 0:
+        raise DataError(f"{what} needs draws, and this distribution has none (a slice that no "
+                        "draw fell on?)")
+
+
+def _column_index(dist: ConditionalDistribution, column, argument: str = "column") -> int:
+    """Index of `column` (an index or a name) among the distribution's columns."""
+    names = list(dist.names)
+    if isinstance(column, (int, np.integer)) and not isinstance(column, (bool, np.bool_)):
+        if not 0 <= column < dist.n_columns:
+            raise DataError(f"{argument} {int(column)} is out of range: the distribution has "
+                            f"columns 0..{dist.n_columns - 1} ({', '.join(names)})")
+        return int(column)
+    if isinstance(column, str) and column in names:
+        return names.index(column)
+    raise DataError(f"{argument} {column!r} is not a column of the distribution; columns are "
+                    f"{names} (or their indices 0..{dist.n_columns - 1})")
+
+
+def _in_units(dist: ConditionalDistribution, j: int, coded) -> np.ndarray:
+    """Coded integer statistic(s) of column `j` in the user's units (divided by the scale)."""
+    return np.asarray(coded, dtype=np.float64) / float(dist.scales[j])
+
+
+def _statistic_label(dist: ConditionalDistribution, j: int) -> str:
+    return f"T({dist.names[j]}): sum of {dist.names[j]} over the events"
+
+
+def _given_text(dist: ConditionalDistribution, original: ConditionalDistribution) -> str:
+    """``"given age = 370"`` for a slice of `original`, or ``""``."""
+    fixed = dist.info.get("conditioned_on") or {}
+    if not fixed:
+        return ""
+    parts = []
+    for name, value in fixed.items():
+        j = list(original.names).index(name) if name in original.names else None
+        shown = value if j is None else float(_in_units(original, j, value))
+        parts.append(f"{name} = {shown:g}")
+    return "given " + ", ".join(parts)
+
+
+def _chain_values(dist: ConditionalDistribution, j: int) -> list[np.ndarray]:
+    """Per chain, the drawn statistic of column `j` in the user's units, in draw order."""
+    return [_in_units(dist, j, dist.support[idx, j]) for idx in dist.chain_index]
+
+
+def _chain_colour(c: int) -> str:
+    return _CHAIN_COLOURS[c % len(_CHAIN_COLOURS)]
+
+
+def _curve_points(n: int) -> np.ndarray:
+    """Draw counts 1..n at which running curves are evaluated (all of them up to the cap)."""
+    if n <= _MAX_CURVE_POINTS:
+        return np.arange(1, n + 1)
+    return np.unique(np.linspace(1, n, _MAX_CURVE_POINTS).round().astype(np.int64))
+
+
+def _sample_size_text(dist: ConditionalDistribution) -> str:
+    n_chains = len(dist.chain_index)
+    kind = "independent stream" if dist.iid else "chain"
+    return f"{dist.n_draws:,} draws, {n_chains} {kind}{'s' if n_chains != 1 else ''}"
+
+
+# -- trace ------------------------------------------------------------------------------------------
+
+def plot_trace(dist: ConditionalDistribution, column: int | str = 0) -> "Figure":
+    """Draw-by-draw path of one statistic along each Monte Carlo chain.
+
+    One step line per chain (the statistic is an integer count, so it moves in jumps) and a
+    horizontal line at the observed value. Chains that stay apart, or that never reach the
+    observed value's region, point to poor mixing.
+
+    Parameters
+    ----------
+    dist : ConditionalDistribution
+        A Monte Carlo distribution (``dist.chain_index`` not None).
+    column : int or str, default 0
+        The statistic shown, by index or name.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        One axes; line ``c`` holds chain ``c``: x the draw number (1, 2, ... as recorded, after
+        warm-up and thinning), y ``dist.support[idx, column] / dist.scales[column]``.
+
+    Raises
+    ------
+    DataError
+        If matplotlib is missing, `dist` is exact or has no draws, or `column` is unknown.
+    """
+    dist = _check_distribution(dist)
+    j = _column_index(dist, column)
+    _needs_draws(dist, "a trace plot")
+    fig = _new_figure((8.0, 4.0))
+    ax = fig.add_subplot()
+    for c, values in enumerate(_chain_values(dist, j)):
+        ax.plot(np.arange(1, values.shape[0] + 1), values, drawstyle="steps-post",
+                linewidth=0.8, alpha=0.85, color=_chain_colour(c), label=f"chain {c + 1}")
+    observed = float(_in_units(dist, j, dist.observed[j]))
+    ax.axhline(observed, color=_OBSERVED_COLOUR, linestyle="--", linewidth=1.6,
+               label=f"observed value {observed:g}", gid="observed")
+    ax.set_xlabel("draw number within the chain (as recorded)")
+    ax.set_ylabel(_statistic_label(dist, j))
+    ax.set_title(f"Path of the {dist.names[j]} statistic along each chain\n"
+                 f"({_sample_size_text(dist)})")
+    ax.legend(loc="best", fontsize="small", ncols=2)
+    return fig
+
+
+# -- running p-value --------------------------------------------------------------------------------
+
+def _round_robin(lengths: Sequence[int]) -> tuple[np.ndarray, np.ndarray]:
+    """Chain and within-chain position of each pooled draw, taking the chains in turn.
+
+    The pooled order is draw 1 of every chain, then draw 2 of every chain, and so on; a chain
+    that has run out is skipped. So every prefix of the pooled series uses all chains evenly.
+    """
+    chain = np.concatenate([np.full(n, c, dtype=np.int64) for c, n in enumerate(lengths)])
+    position = np.concatenate([np.arange(n, dtype=np.int64) for n in lengths])
+    order = np.lexsort((chain, position))
+    return chain[order], position[order]
+
+
+def _binomial_mcse(p: np.ndarray, n: np.ndarray) -> np.ndarray:
+    """``sqrt(p (1 - p) / n)`` with the variance floored at one draw's resolution.
+
+    The floor ``(1/(n+2)) (1 - 1/(n+2))`` (as in :func:`mcexact.montecarlo.mcse_of_indicator`)
+    keeps the band open at an estimate of exactly 0 or 1, which is known only to about 1/n.
+    """
+    floor = (1.0 / (n + 2)) * (1.0 - 1.0 / (n + 2))
+    return np.sqrt(np.maximum(p * (1.0 - p), floor) / n)
+
+
+def _batch_means_mcse(cumsums: list[np.ndarray], used: np.ndarray, grand: np.ndarray) -> np.ndarray:
+    """Batch-means MCSE of the pooled mean of the first ``used[k, c]`` draws of each chain c.
+
+    The estimator of :func:`mcexact.montecarlo.mcse_of_indicator` (Flegal & Jones 2010) applied to
+    each prefix: in every chain, batches of ``b = floor(sqrt(n_c))`` consecutive draws; the batch
+    means of all chains pooled around the prefix's grand mean, ``sigma^2 = b_bar * sum (m -
+    grand)^2 / (n_batches - 1)``, ``mcse = sqrt(max(sigma^2, floor) / n)`` with the floor of
+    :func:`_binomial_mcse`. NaN where no chain has two batches yet.
+
+    Parameters
+    ----------
+    cumsums : list of ndarray
+        Per chain, ``r_[0, cumsum(indicator)]``.
+    used : ndarray, shape (n_points, n_chains)
+        Draws of each chain in each prefix.
+    grand : ndarray, shape (n_points,)
+        Mean indicator of each prefix.
+    """
+    out = np.full(used.shape[0], np.nan)
+    for k in range(used.shape[0]):
+        squares, n_batches, sizes = 0.0, 0, []
+        for c, cs in enumerate(cumsums):
+            n = int(used[k, c])
+            b = max(1, int(np.sqrt(n)))
+            a = n // b
+            if a < 2:
+                continue
+            edges = cs[np.arange(a + 1) * b]
+            means = np.diff(edges) / b
+            squares += float(np.sum((means - grand[k]) ** 2))
+            n_batches += a
+            sizes.append(b)
+        if n_batches < 2:
+            continue
+        n_total = float(used[k].sum())
+        sigma2 = float(np.mean(sizes)) * squares / (n_batches - 1)
+        floor = (1.0 / (n_total + 2)) * (1.0 - 1.0 / (n_total + 2))
+        out[k] = np.sqrt(max(sigma2, floor) / n_total)
+    return out
+
+
+def _indicator(dist: ConditionalDistribution, more, tie, mid_p: bool) -> np.ndarray:
+    arrays = []
+    for name, a in (("more", more), ("tie", tie)):
+        a = np.asarray(a)
+        if a.shape != (dist.n_points,):
+            raise DataError(f"{name} must have one entry per support point ({dist.n_points}), "
+                            f"got shape {a.shape}")
+        a = a.astype(np.float64)
+        if not np.all((a == 0) | (a == 1)):
+            raise DataError(f"{name} must hold booleans (or 0/1) per support point")
+        arrays.append(a)
+    more_f, tie_f = arrays
+    if np.any(more_f * tie_f):
+        raise DataError("a support point cannot be both more extreme than and tied with the "
+                        "observed value (more and tie overlap)")
+    return more_f + (0.5 if mid_p else 1.0) * tie_f
+
+
+def plot_running_pvalue(dist: ConditionalDistribution, more, tie, *, exact: float | None = None,
+                        mid_p: bool = False) -> "Figure":
+    """A Monte Carlo p-value as the draws accumulate, with a band of two standard errors.
+
+    Each draw contributes the indicator ``more[idx] + tie[idx]`` (``+ 0.5 * tie[idx]`` for the
+    mid-p-value, Lancaster 1961). The thick curve is the running mean over all chains pooled,
+    taking the chains in turn (draw 1 of every chain, then draw 2, ...), so every prefix weighs
+    the chains evenly; thin curves are the running means of single chains, placed at the pooled
+    positions of their draws. The band is the pooled estimate +/- 2 MCSE, where the MCSE of the
+    first n pooled draws is
+
+    - independent draws (``dist.iid``): binomial, ``sqrt(p (1 - p) / n)`` with p the running
+      estimate, the variance floored at ``(1/(n+2)) (1 - 1/(n+2))`` so the band stays open at 0;
+    - Markov chains: batch means (Flegal & Jones 2010) on the prefix of every chain, batches of
+      ``floor(sqrt(n_c))`` draws pooled over the chains around the prefix's mean, with the same
+      floor: the estimator of :func:`mcexact.montecarlo.mcse_of_indicator`, so the band's last
+      point is two of the MCSEs that function gives for all the draws. The band is absent (NaN)
+      until some chain has two batches.
+
+    Curves are evaluated at every draw count up to 2000 draws, and at 2000 evenly spaced counts
+    beyond. The x axis is logarithmic, so early instability and late drift are both visible.
+
+    Parameters
+    ----------
+    dist : ConditionalDistribution
+        A Monte Carlo distribution.
+    more, tie : array of bool, shape (dist.n_points,)
+        Per support point: strictly more extreme than observed, tied with it (as in the
+        :class:`~mcexact.inference.TestResult` of :func:`mcexact.inference.joint_tests`).
+    exact : float, optional
+        An exact p-value to draw as a horizontal reference line.
+    mid_p : bool, default False
+        Count ties as one half (mid-p-value) instead of one.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        One axes. The pooled curve has gid ``"pooled"``, the band edges gids ``"mcse-upper"`` and
+        ``"mcse-lower"``, the exact line gid ``"exact"``; chain curves are labelled
+        ``"chain 1"``, ... (only when there are several chains).
+
+    Raises
+    ------
+    DataError
+        If matplotlib is missing, `dist` is exact, `more`/`tie` do not match the support, or
+        `exact` is not a probability.
+
+    References
+    ----------
+    Flegal, J. M. & Jones, G. L. (2010). Batch means and spectral variance estimators in Markov
+    chain Monte Carlo. Annals of Statistics 38, 1034-1070.
+    Lancaster, H. O. (1961). Significance tests in discrete distributions. JASA 56, 223-234.
+    """
+    dist = _check_distribution(dist)
+    _needs_draws(dist, "a running p-value plot")
+    values = _indicator(dist, more, tie, mid_p)
+    if exact is not None:
+        if isinstance(exact, bool) or not np.isscalar(exact) or not 0.0 <= float(exact) <= 1.0:
+            raise DataError(f"exact must be a p-value between 0 and 1, got {exact!r}")
+    series = [values[idx] for idx in dist.chain_index]
+    lengths = [s.shape[0] for s in series]
+    chain_of, _ = _round_robin(lengths)
+    pooled = np.concatenate(series)[np.argsort(np.lexsort((
+        np.concatenate([np.full(n, c) for c, n in enumerate(lengths)]),
+        np.concatenate([np.arange(n) for n in lengths]))), kind="stable")]
+    del pooled      # (kept below in a clearer form)
+    pooled_values = np.empty(sum(lengths))
+    next_draw = [0] * len(series)
+    for k, c in enumerate(chain_of):
+        pooled_values[k] = series[c][next_draw[c]]
+        next_draw[c] += 1
+    n_total = pooled_values.shape[0]
+    points = _curve_points(n_total)
+    running = np.cumsum(pooled_values)[points - 1] / points
+
+    if dist.iid:
+        mcse = _binomial_mcse(running, points.astype(np.float64))
+        band_label = "±2 MCSE (binomial, independent draws)"
+    else:
+        used = np.stack([np.cumsum(chain_of == c)[points - 1] for c in range(len(series))],
+                        axis=1)
+        cumsums = [np.r_[0.0, np.cumsum(s)] for s in series]
+        mcse = _batch_means_mcse(cumsums, used, running)
+        band_label = "±2 MCSE (batch means per chain)"
+
+    what = "mid-p-value" if mid_p else "p-value"
+    fig = _new_figure((8.0, 4.5))
+    ax = fig.add_subplot()
+    if len(series) > 1:
+        for c, s in enumerate(series):
+            if s.shape[0] == 0:
+                continue
+            at = np.flatnonzero(chain_of == c) + 1          # pooled positions of its draws
+            keep = _curve_points(s.shape[0]) - 1
+            ax.plot(at[keep], np.cumsum(s)[keep] / (keep + 1), linewidth=0.7, alpha=0.7,
+                    color=_chain_colour(c), label=f"chain {c + 1}")
+    lower, upper = running - 2 * mcse, running + 2 * mcse
+    ax.fill_between(points, lower, upper, color="0.6", alpha=0.35, linewidth=0,
+                    label=band_label)
+    ax.plot(points, upper, color="0.35", linewidth=0.6, gid="mcse-upper")
+    ax.plot(points, lower, color="0.35", linewidth=0.6, gid="mcse-lower")
+    final_mcse = mcse[-1]
+    final = (f"{running[-1]:.4g} ± {2 * final_mcse:.2g}" if np.isfinite(final_mcse)
+             else f"{running[-1]:.4g}")
+    ax.plot(points, running, color="black", linewidth=2.0, gid="pooled",
+            label=f"all chains pooled (final {final})")
+    if exact is not None:
+        ax.axhline(float(exact), color=_EXACT_COLOUR, linestyle="--", linewidth=1.5,
+                   gid="exact", label=f"exact {what} {float(exact):.4g}")
+    ax.set_xscale("log")
+    ax.set_xlim(1, n_total)
+    ax.set_xlabel("draws used, all chains taken in turn (log scale)")
+    ax.set_ylabel(f"Monte Carlo {what} estimate")
+    ax.set_title(f"Monte Carlo {what} as draws accumulate: test of "
+                 f"{', '.join(dist.names)}\n({_sample_size_text(dist)})")
+    ax.legend(loc="best", fontsize="small")
+    return fig
+
+
+# -- autocorrelation ------------------------------------------------------------------------------
+
+def _autocorrelation_fft(x: np.ndarray, max_lag: int) -> np.ndarray:
+    """``r_k = sum_i (x_i - m)(x_{i+k} - m) / sum_i (x_i - m)^2`` for k = 0..max_lag, by FFT.
+
+    The usual biased estimator (divisor n at every lag, Box & Jenkins); zero padding to at least
+    2n - 1 points turns the circular correlation of the FFT into the linear one. Lags at or beyond
+    the chain's length, and every lag of a constant chain, are NaN.
+    """
+    out = np.full(max_lag + 1, np.nan)
+    n = x.shape[0]
+    if n < 2:
+        return out
+    centred = x - x.mean()
+    size = 1 << int(2 * n - 1).bit_length()
+    spectrum = np.fft.rfft(centred, size)
+    acov = np.fft.irfft(spectrum * np.conj(spectrum), size)[:min(max_lag + 1, n)]
+    if acov[0] <= 1e-12 * max(1.0, float(np.max(np.abs(x))) ** 2) * n:
+        return out
+    out[:acov.shape[0]] = acov / acov[0]
+    return out
+
+
+def _chain_autocorrelations(values: list[np.ndarray], max_lag: int) -> np.ndarray:
+    """(chain, lag) autocorrelations, by ``mcexact.diagnostics.autocorrelation`` when it exists.
+
+    That function takes a (chain, draw) array, so it is used only when all chains have the same
+    length and it returns lags 0..max_lag; otherwise this module's FFT estimator is used.
+    """
+    lengths = {v.shape[0] for v in values}
+    if len(lengths) == 1:
+        try:
+            from mcexact.diagnostics import autocorrelation
+        except ImportError:
+            autocorrelation = None
+        if autocorrelation is not None:
+            result = np.asarray(autocorrelation(np.vstack(values), max_lag), dtype=np.float64)
+            if result.shape == (len(values), max_lag + 1):
+                return result
+    return np.vstack([_autocorrelation_fft(v, max_lag) for v in values])
+
+
+def plot_autocorrelation(dist: ConditionalDistribution, column: int | str = 0,
+                         max_lag: int = 50) -> "Figure":
+    """Autocorrelation of one drawn statistic within each chain, against the lag.
+
+    Computed by :func:`mcexact.diagnostics.autocorrelation` when that module is available and the
+    chains have equal lengths, else here by FFT (the estimator with divisor n at every lag). The
+    shaded band ``+/- 2 / sqrt(n)`` (n the shortest chain) is the rough spread of sample
+    autocorrelations of independent draws; slow decay beyond it means few effective draws.
+
+    Parameters
+    ----------
+    dist : ConditionalDistribution
+        A Monte Carlo distribution.
+    column : int or str, default 0
+        The statistic, by index or name.
+    max_lag : int, default 50
+        Largest lag shown (lags beyond a chain's length are left out).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        One axes; the line labelled ``"chain c"`` holds lags 0..max_lag and chain c's
+        autocorrelations (NaN for a constant chain, which a note on the axes names).
+
+    Raises
+    ------
+    DataError
+        If matplotlib is missing, `dist` is exact, `column` is unknown or `max_lag` is not a
+        positive integer.
+    """
+    dist = _check_distribution(dist)
+    j = _column_index(dist, column)
+    _needs_draws(dist, "an autocorrelation plot")
+    if isinstance(max_lag, (bool, np.bool_)) or not isinstance(max_lag, (int, np.integer)) \
+            or max_lag < 1:
+        raise DataError(f"max_lag must be a positive integer, got {max_lag!r}")
+    max_lag = int(max_lag)
+    values = [v for v in _chain_values(dist, j)]
+    acf = _chain_autocorrelations(values, max_lag)
+    lags = np.arange(max_lag + 1)
+    fig = _new_figure((8.0, 4.0))
+    ax = fig.add_subplot()
+    shortest = min(v.shape[0] for v in values)
+    if shortest > 0:
+        half_width = 2.0 / np.sqrt(shortest)
+        ax.axhspan(-half_width, half_width, color="0.85", zorder=0,
+                   label=f"±2/√n (n = {shortest:,}): typical of independent draws")
+    ax.axhline(0.0, color="0.3", linewidth=0.8)
+    constant = []
+    for c in range(acf.shape[0]):
+        if np.all(np.isnan(acf[c])):
+            constant.append(c + 1)
+        ax.plot(lags, acf[c], marker="o", markersize=2.5, linewidth=1.0,
+                color=_chain_colour(c), label=f"chain {c + 1}")
+    if constant:
+        ax.text(0.98, 0.95, "no variation (autocorrelation undefined) in chain "
+                + ", ".join(str(c) for c in constant), transform=ax.transAxes, ha="right",
+                va="top", fontsize="small", color=_TAIL_COLOUR)
+    ax.set_xlim(-0.5, max_lag + 0.5)
+    ax.set_xlabel("lag (recorded draws)")
+    ax.set_ylabel("autocorrelation")
+    ax.set_title(f"Within-chain autocorrelation of the {dist.names[j]} statistic\n"
+                 f"({_sample_size_text(dist)})")
+    ax.legend(loc="upper right" if not constant else "center right", fontsize="small", ncols=2)
+    return fig
+
+
+# -- one-column null distribution ---------------------------------------------------------------------
+
+def _slice(dist: ConditionalDistribution, keep: Sequence[int]) -> ConditionalDistribution:
+    """`dist` restricted to the columns `keep`, the others fixed at their observed values."""
+    others = [k for k in range(dist.n_columns) if k not in keep]
+    piece = dist.condition(others) if others else dist
+    if piece.is_monte_carlo and piece.n_draws == 0:
+        raise DataError("no draw has the other statistics at their observed values, so this "
+                        "slice of the Monte Carlo distribution is empty; draw more")
+    if not np.any(np.isfinite(piece.log_weights)):
+        raise DataError("every support point of the slice has probability zero")
+    return piece
+
+
+def _tilt_for(dist: ConditionalDistribution, j: int, beta) -> float:
+    """The tilt of column `j` from `beta` (a number, or one entry per column of `dist`)."""
+    if beta is None:
+        return 0.0
+    b = np.asarray(beta, dtype=np.float64).reshape(-1)
+    if b.shape[0] == 1:
+        value = float(b[0])
+    elif b.shape[0] == dist.n_columns:
+        value = float(b[j])
+    else:
+        raise DataError(f"beta must be a number or have one entry per column "
+                        f"({dist.n_columns}), got {b.shape[0]} entries")
+    if not np.isfinite(value):
+        raise DataError("beta must be finite")
+    return value
+
+
+def plot_null_distribution(dist: ConditionalDistribution, column: int | str = 0,
+                           beta=None) -> "Figure":
+    """Bar chart of the conditional distribution of one statistic, observed value and tail marked.
+
+    With several columns, the others are fixed at their observed values
+    (:meth:`ConditionalDistribution.condition`), the slice on which this column is tested. One
+    bar per support point, at the statistic's value in the user's units; the observed value's bar
+    is drawn in its own colour and marked with a diamond, and the smaller one-sided tail beyond
+    it (``T >= t`` or ``T <= t``, the one whose doubling gives the two-sided p-value) in another.
+    For a Monte Carlo distribution each bar also carries +/- 2 binomial MCSE,
+    ``sqrt(p (1 - p) / N)`` with N the draws on the slice (an understatement for correlated
+    Markov draws, as the legend says).
+
+    Parameters
+    ----------
+    dist : ConditionalDistribution
+        Exact or Monte Carlo.
+    column : int or str, default 0
+        The statistic, by index or name.
+    beta : float or array, optional
+        Tilt on the coded scale (see :meth:`ConditionalDistribution.pmf`): a number for this
+        column, or one entry per column of `dist` (only this column's entry matters on the
+        slice). Default: the null, beta = 0. Not available for a Monte Carlo distribution, whose
+        reweighted frequencies would have no binomial error.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        One axes with up to three bar containers labelled ``"other values"``, ``"tail ..."`` and
+        ``"observed ..."`` whose bars together have heights ``pmf`` at x = support / scale; the
+        observed marker has gid ``"observed"``; MCSE error bars are labelled ``"±2 ..."``.
+
+    Raises
+    ------
+    DataError
+        If matplotlib is missing, `column` or `beta` is invalid, beta is given for a Monte Carlo
+        distribution, or the slice is empty.
+    """
+    dist = _check_distribution(dist)
+    j = _column_index(dist, column)
+    b = _tilt_for(dist, j, beta)
+    if dist.is_monte_carlo and b != 0.0:
+        raise DataError("beta is available for exact distributions only: tilted frequencies of "
+                        "Monte Carlo draws have no binomial error to show")
+    piece = _slice(dist, [j])
+    p = piece.pmf(None if b == 0.0 else [b])
+    t_coded = int(piece.observed[0])
+    coded = piece.support[:, 0]
+    x = _in_units(dist, j, coded)
+    t = float(_in_units(dist, j, t_coded))
+    p_le, p_ge = float(p[coded <= t_coded].sum()), float(p[coded >= t_coded].sum())
+    upper = p_ge <= p_le
+    in_tail = (coded >= t_coded) if upper else (coded <= t_coded)
+    is_obs = coded == t_coded
+    sign = "≥" if upper else "≤"
+    tail_p = p_ge if upper else p_le
+
+    distinct = np.unique(x)
+    width = 0.8 * (float(np.min(np.diff(distinct))) if distinct.shape[0] > 1 else 1.0)
+    fig = _new_figure((8.0, 4.5))
+    ax = fig.add_subplot()
+    groups = (
+        (~in_tail, _BAR_COLOUR, "other values", None),
+        (in_tail & ~is_obs, _TAIL_COLOUR, f"tail T {sign} {t:g}: probability {tail_p:.4g}", None),
+        (is_obs, _OBSERVED_COLOUR, f"observed value t = {t:g}", "//"),
+    )
+    for mask, colour, label, hatch in groups:
+        if mask.any():
+            ax.bar(x[mask], p[mask], width=width, color=colour, edgecolor="white",
+                   hatch=hatch, linewidth=0.5, label=label)
+    if piece.is_monte_carlo:
+        n = piece.n_draws
+        err = 2.0 * np.sqrt(p * (1.0 - p) / n)
+        note = ("independent draws" if piece.iid
+                else "treats the correlated chain draws as independent, so too narrow")
+        ax.errorbar(x, p, yerr=err, fmt="none", ecolor="0.2", elinewidth=0.8, capsize=2,
+                    label=f"±2 binomial MCSE per bar (N = {n:,} draws; {note})")
+    p_obs = float(p[is_obs].sum())
+    ax.plot([t], [p_obs], marker="D", markersize=8, linestyle="none", color=_OBSERVED_COLOUR,
+            markeredgecolor="white", gid="observed", label="_observed marker")
+    ax.text(0.02, 0.97, f"P(T ≤ {t:g}) = {p_le:.4g}\nP(T ≥ {t:g}) = {p_ge:.4g}",
+            transform=ax.transAxes, ha="left", va="top", fontsize="small",
+            bbox={"boxstyle": "round", "facecolor": "white", "edgecolor": "0.7"})
+    ax.set_xlabel(_statistic_label(dist, j))
+    estimated = "estimated " if piece.is_monte_carlo else ""
+    ax.set_ylabel(f"{estimated}conditional probability")
+    given = _given_text(piece, dist)
+    tilt = f"tilted by beta = {b:g}" if b != 0.0 else "null"
+    first = f"Conditional {tilt} distribution of the {dist.names[j]} statistic"
+    extra = [s for s in (given, _sample_size_text(piece) if piece.is_monte_carlo else "") if s]
+    ax.set_title(first + ("\n(" + "; ".join(extra) + ")" if extra else ""))
+    ax.set_ylim(bottom=0.0)
+    ax.legend(loc="upper right", fontsize="small")
+    return fig
+
+
+# -- two columns --------------------------------------------------------------------------------------
+
+def _cell_edges(centres: np.ndarray) -> np.ndarray:
+    """Edges of cells centred on sorted `centres`: midpoints, the ends half a gap outside."""
+    if centres.shape[0] == 1:
+        return np.array([centres[0] - 0.5, centres[0] + 0.5])
+    mid = 0.5 * (centres[1:] + centres[:-1])
+    return np.r_[2 * centres[0] - mid[0], mid, 2 * centres[-1] - mid[-1]]
+
+
+def _outline(inside: np.ndarray, x_edges: np.ndarray, y_edges: np.ndarray) -> list:
+    """Segments of the boundary between cells in and out of `inside` (rows y, columns x)."""
+    padded = np.pad(inside, 1, constant_values=False)
+    segments = []
+    # A vertical edge lies between horizontally adjacent cells that differ.
+    rows, cols = np.nonzero(padded[1:-1, 1:] != padded[1:-1, :-1])
+    for r, c in zip(rows, cols):
+        segments.append([(x_edges[c], y_edges[r]), (x_edges[c], y_edges[r + 1])])
+    rows, cols = np.nonzero(padded[1:, 1:-1] != padded[:-1, 1:-1])
+    for r, c in zip(rows, cols):
+        segments.append([(x_edges[c], y_edges[r]), (x_edges[c + 1], y_edges[r])])
+    return segments
+
+
+def plot_joint(dist: ConditionalDistribution, columns: Sequence[int | str] = (0, 1)) -> "Figure":
+    """Two statistics at once: a grid of log10 probabilities, the observed cell and the region
+    of values more probable than it.
+
+    Each cell is a pair of values of the two statistics (user's units; cells of unequal width
+    where the values are unevenly spaced), coloured by log10 of its conditional probability;
+    pairs outside the support (for a Monte Carlo distribution: never drawn) are left blank. A
+    star marks the observed pair, and a black outline follows the cell edges around the pairs
+    strictly more probable than the observed one: everything outside it is at least as extreme
+    by the probability ordering, and its total probability (the probability test's p-value, ties
+    within :data:`mcexact.inference.TIE_RTOL` counted as extreme) is given in the legend. With
+    more than two columns, the others are fixed at their observed values.
+
+    Parameters
+    ----------
+    dist : ConditionalDistribution
+        Exact or Monte Carlo, with at least two columns.
+    columns : pair of int or str, default (0, 1)
+        The statistics on the x and y axes.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Main axes (first) and colour bar. The main axes holds one QuadMesh whose array is the
+        (n_y, n_x) grid of log10 probabilities (masked where blank), a LineCollection with gid
+        ``"outline"`` and the observed marker with gid ``"observed"``.
+
+    Raises
+    ------
+    DataError
+        If matplotlib is missing, `dist` has one column, `columns` is not two distinct columns,
+        or the slice is empty.
+    """
+    dist = _check_distribution(dist)
+    if dist.n_columns < 2:
+        raise DataError(f"a joint plot needs a distribution of at least two statistics; this "
+                        f"one has a single column ({dist.names[0]}): use plot_null_distribution")
+    if isinstance(columns, (str, bytes)) or len(columns) != 2:
+        raise DataError(f"columns must name two columns, got {columns!r}")
+    ix = _column_index(dist, columns[0], "columns[0]")
+    iy = _column_index(dist, columns[1], "columns[1]")
+    if ix == iy:
+        raise DataError(f"columns must be two different columns, got {dist.names[ix]!r} twice")
+    piece = _slice(dist, [ix, iy])
+    # The slice keeps the two columns in the original order.
+    kx, ky = (0, 1) if ix < iy else (1, 0)
+    log_p = piece.log_pmf()
+    x_vals, x_pos = np.unique(piece.support[:, kx], return_inverse=True)
+    y_vals, y_pos = np.unique(piece.support[:, ky], return_inverse=True)
+    grid = np.full((y_vals.shape[0], x_vals.shape[0]), np.nan)
+    with np.errstate(divide="ignore"):
+        grid[y_pos, x_pos] = log_p / np.log(10.0)
+    grid[~np.isfinite(grid)] = np.nan
+    obs_index = piece.observed_index
+    lp_obs = float(log_p[obs_index]) if obs_index is not None else -np.inf
+    # Same tolerance as the probability test: absolute on the log scale.
+    more_probable = np.isfinite(log_p) & (log_p > lp_obs + TIE_RTOL)
+    inside = np.zeros(grid.shape, dtype=bool)
+    inside[y_pos, x_pos] = more_probable
+    extreme_p = float(np.exp(logsumexp(log_p[~more_probable]))) if (~more_probable).any() else 0.0
+
+    x_edges = _cell_edges(_in_units(dist, ix, x_vals))
+    y_edges = _cell_edges(_in_units(dist, iy, y_vals))
+    fig = _new_figure((7.0, 5.5))
+    ax = fig.add_subplot()
+    mesh = ax.pcolormesh(x_edges, y_edges, np.ma.masked_invalid(grid), cmap="cividis",
+                         shading="flat")
+    blank = "never drawn" if piece.is_monte_carlo else "impossible given the nuisance statistics"
+    estimated = "estimated " if piece.is_monte_carlo else ""
+    bar = fig.colorbar(mesh, ax=ax)
+    bar.set_label(f"log10 {estimated}probability of the pair (blank: {blank})")
+    from matplotlib.collections import LineCollection
+    from matplotlib.lines import Line2D
+
+    segments = _outline(inside, x_edges, y_edges)
+    handles = []
+    if segments:
+        ax.add_collection(LineCollection(segments, colors="black", linewidths=1.6,
+                                         gid="outline"))
+        handles.append(Line2D([], [], color="black", linewidth=1.6,
+                              label="edge of the pairs more probable than observed"))
+    tx = float(_in_units(dist, ix, piece.observed[kx]))
+    ty = float(_in_units(dist, iy, piece.observed[ky]))
+    (marker,) = ax.plot([tx], [ty], marker="*", markersize=15, linestyle="none",
+                        color=_TAIL_COLOUR, markeredgecolor="white", gid="observed",
+                        label=f"observed ({tx:g}, {ty:g})")
+    handles.insert(0, marker)
+    handles.append(Line2D([], [], linestyle="none",
+                          label=f"P(pair at most as probable as observed) = {extreme_p:.4g}"))
+    ax.legend(handles=handles, loc="upper left", fontsize="small", framealpha=0.9)
+    ax.set_xlim(x_edges[0], x_edges[-1])
+    ax.set_ylim(y_edges[0], y_edges[-1])
+    ax.set_xlabel(_statistic_label(dist, ix))
+    ax.set_ylabel(_statistic_label(dist, iy))
+    given = _given_text(piece, dist)
+    extra = [s for s in (given, _sample_size_text(piece) if piece.is_monte_carlo else "") if s]
+    ax.set_title(f"Joint conditional null distribution of {dist.names[ix]} and "
+                 f"{dist.names[iy]}" + ("\n(" + "; ".join(extra) + ")" if extra else ""))
+    return fig
