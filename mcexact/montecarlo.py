@@ -161,8 +161,6 @@ class Sample:
     def to_distribution(self) -> ConditionalDistribution:
         """The sampled distribution: support = values drawn (plus the observed value), weights =
         relative frequencies (times the total count when it is known), draws kept per chain."""
-        if self.beta is not None:
-            raise DataError("a tilted sample does not estimate the null distribution directly")
         allT = np.concatenate(self.chains, axis=0)
         support, inverse, counts = np.unique(allT, axis=0, return_inverse=True, return_counts=True)
         inverse = inverse.reshape(-1)
@@ -173,16 +171,24 @@ class Sample:
             counts = np.r_[counts, 0]
         with np.errstate(divide="ignore"):
             log_w = np.log(counts.astype(float)) - np.log(allT.shape[0])
-        if self.log_total is not None:
+        if self.beta is not None:
+            # Draws from the tilted target c(t) exp(beta . t): reweighting by exp(-beta . t)
+            # estimates the null weights (importance sampling), accurately near beta.
+            log_w = log_w - support @ self.beta
+        elif self.log_total is not None:
             log_w = log_w + self.log_total
         splits = np.cumsum([c.shape[0] for c in self.chains])[:-1]
         info = {"method": self.engine, "n_draws": self.n_draws, "n_chains": len(self.chains),
                 "seconds": self.seconds, **self.info}
+        if self.beta is not None:
+            info["tilt"] = [float(b) for b in self.beta]
         return ConditionalDistribution(
             support=support, log_weights=log_w, observed=self.observed, names=self.names,
             scales=self.scales, info=info, chain_index=tuple(np.split(inverse, splits)),
             iid=self.engine == "direct", support_min=self.support_min,
-            support_max=self.support_max, null_mean=self.null_mean, null_cov=self.null_cov)
+            support_max=self.support_max,
+            null_mean=self.null_mean if self.beta is None else None,
+            null_cov=self.null_cov if self.beta is None else None)
 
 
 # -- direct engine ----------------------------------------------------------------------------

@@ -284,6 +284,8 @@ def plot_running_pvalue(dist: ConditionalDistribution, more, tie, *, exact: floa
       point is two of the MCSEs that function gives for all the draws. The band is absent (NaN)
       until some chain has two batches.
 
+    The band is clipped to [0, 1].
+
     Curves are evaluated at every draw count up to 2000 draws, and at 2000 evenly spaced counts
     beyond. The x axis is logarithmic, so early instability and late drift are both visible.
 
@@ -326,16 +328,9 @@ def plot_running_pvalue(dist: ConditionalDistribution, more, tie, *, exact: floa
             raise DataError(f"exact must be a p-value between 0 and 1, got {exact!r}")
     series = [values[idx] for idx in dist.chain_index]
     lengths = [s.shape[0] for s in series]
-    chain_of, _ = _round_robin(lengths)
-    pooled = np.concatenate(series)[np.argsort(np.lexsort((
-        np.concatenate([np.full(n, c) for c, n in enumerate(lengths)]),
-        np.concatenate([np.arange(n) for n in lengths]))), kind="stable")]
-    del pooled      # (kept below in a clearer form)
-    pooled_values = np.empty(sum(lengths))
-    next_draw = [0] * len(series)
-    for k, c in enumerate(chain_of):
-        pooled_values[k] = series[c][next_draw[c]]
-        next_draw[c] += 1
+    chain_of, position = _round_robin(lengths)
+    starts = np.r_[0, np.cumsum(lengths)[:-1]].astype(np.int64)
+    pooled_values = np.concatenate(series)[starts[chain_of] + position]
     n_total = pooled_values.shape[0]
     points = _curve_points(n_total)
     running = np.cumsum(pooled_values)[points - 1] / points
@@ -361,7 +356,8 @@ def plot_running_pvalue(dist: ConditionalDistribution, more, tie, *, exact: floa
             keep = _curve_points(s.shape[0]) - 1
             ax.plot(at[keep], np.cumsum(s)[keep] / (keep + 1), linewidth=0.7, alpha=0.7,
                     color=_chain_colour(c), label=f"chain {c + 1}")
-    lower, upper = running - 2 * mcse, running + 2 * mcse
+    # A p-value lies in [0, 1]; so does its band.
+    lower, upper = np.clip(running - 2 * mcse, 0.0, 1.0), np.clip(running + 2 * mcse, 0.0, 1.0)
     ax.fill_between(points, lower, upper, color="0.6", alpha=0.35, linewidth=0,
                     label=band_label)
     ax.plot(points, upper, color="0.35", linewidth=0.6, gid="mcse-upper")
@@ -597,11 +593,12 @@ def plot_null_distribution(dist: ConditionalDistribution, column: int | str = 0,
     if piece.is_monte_carlo:
         n = piece.n_draws
         err = 2.0 * np.sqrt(p * (1.0 - p) / n)
-        note = ("independent draws" if piece.iid
-                else "treats the correlated chain draws as independent, so too narrow")
+        note = "" if piece.iid else "; too narrow for correlated chain draws"
         ax.errorbar(x, p, yerr=err, fmt="none", ecolor="0.2", elinewidth=0.8, capsize=2,
-                    label=f"±2 binomial MCSE per bar (N = {n:,} draws; {note})")
+                    label=f"±2 binomial MCSE per bar (N = {n:,}{note})")
     p_obs = float(p[is_obs].sum())
+    # A thin line finds the observed value even where its bar is too low to see.
+    ax.axvline(t, color=_OBSERVED_COLOUR, linestyle=":", linewidth=1.0, gid="observed-line")
     ax.plot([t], [p_obs], marker="D", markersize=8, linestyle="none", color=_OBSERVED_COLOUR,
             markeredgecolor="white", gid="observed", label="_observed marker")
     ax.text(0.02, 0.97, f"P(T ≤ {t:g}) = {p_le:.4g}\nP(T ≥ {t:g}) = {p_ge:.4g}",
@@ -654,8 +651,10 @@ def plot_joint(dist: ConditionalDistribution, columns: Sequence[int | str] = (0,
     star marks the observed pair, and a black outline follows the cell edges around the pairs
     strictly more probable than the observed one: everything outside it is at least as extreme
     by the probability ordering, and its total probability (the probability test's p-value, ties
-    within :data:`mcexact.inference.TIE_RTOL` counted as extreme) is given in the legend. With
-    more than two columns, the others are fixed at their observed values.
+    within :data:`mcexact.inference.TIE_RTOL` counted as extreme) is given in the legend. When a
+    Monte Carlo run never drew the observed pair there is no outline (every drawn pair would be
+    inside it) and the legend says so. With more than two columns, the others are fixed at their
+    observed values.
 
     Parameters
     ----------
@@ -669,7 +668,8 @@ def plot_joint(dist: ConditionalDistribution, columns: Sequence[int | str] = (0,
     matplotlib.figure.Figure
         Main axes (first) and colour bar. The main axes holds one QuadMesh whose array is the
         (n_y, n_x) grid of log10 probabilities (masked where blank), a LineCollection with gid
-        ``"outline"`` and the observed marker with gid ``"observed"``.
+        ``"outline"`` and the observed marker with gid ``"observed"``; the legend is the
+        figure's.
 
     Raises
     ------
@@ -711,14 +711,17 @@ def plot_joint(dist: ConditionalDistribution, columns: Sequence[int | str] = (0,
     ax = fig.add_subplot()
     mesh = ax.pcolormesh(x_edges, y_edges, np.ma.masked_invalid(grid), cmap="cividis",
                          shading="flat")
-    blank = "never drawn" if piece.is_monte_carlo else "impossible given the nuisance statistics"
+    blank = "never drawn" if piece.is_monte_carlo else "impossible"
     estimated = "estimated " if piece.is_monte_carlo else ""
     bar = fig.colorbar(mesh, ax=ax)
-    bar.set_label(f"log10 {estimated}probability of the pair (blank: {blank})")
+    bar.set_label(f"log10 {estimated}probability (blank: {blank})")
     from matplotlib.collections import LineCollection
     from matplotlib.lines import Line2D
 
-    segments = _outline(inside, x_edges, y_edges)
+    # An observed pair never drawn has estimated probability 0: every drawn pair is more
+    # probable, and an outline around each of them would hide the picture.
+    observed_unseen = not np.isfinite(lp_obs)
+    segments = [] if observed_unseen else _outline(inside, x_edges, y_edges)
     handles = []
     if segments:
         ax.add_collection(LineCollection(segments, colors="black", linewidths=1.6,
@@ -731,9 +734,10 @@ def plot_joint(dist: ConditionalDistribution, columns: Sequence[int | str] = (0,
                         color=_TAIL_COLOUR, markeredgecolor="white", gid="observed",
                         label=f"observed ({tx:g}, {ty:g})")
     handles.insert(0, marker)
-    handles.append(Line2D([], [], linestyle="none",
-                          label=f"P(pair at most as probable as observed) = {extreme_p:.4g}"))
-    ax.legend(handles=handles, loc="upper left", fontsize="small", framealpha=0.9)
+    summary = (f"P(pair at most as probable as observed) = {extreme_p:.4g}" if not observed_unseen
+               else "observed pair never drawn: its estimated probability is 0 (draw more)")
+    handles.append(Line2D([], [], linestyle="none", label=summary))
+    fig.legend(handles=handles, loc="outside lower center", ncols=2, fontsize="small")
     ax.set_xlim(x_edges[0], x_edges[-1])
     ax.set_ylim(y_edges[0], y_edges[-1])
     ax.set_xlabel(_statistic_label(dist, ix))
