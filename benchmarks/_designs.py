@@ -119,3 +119,42 @@ def sparse_interest_design(n: int) -> RawDesign:
                 + _SPARSE_BAND * rng.integers(0, 2, size=_POOL_ROWS))[:n]
     y = (rng.random(_POOL_ROWS) < 0.2).astype(np.int64)[:n]
     return RawDesign(f"sparse n={n}", y, interest, nuisance)
+
+
+# ------------------------------------------------------- families of benchmarks/bench_sampler.py
+
+__all__ += ["distinct_interest_design", "integer_covariate_design"]
+
+# Family numbers in the seed, after the five above.
+_DISTINCT, _INTEGER_COVARIATE = 5, 6
+
+
+def distinct_interest_design(n: int, *, event_share: float = 0.1,
+                             nuisance_levels: int = 0) -> RawDesign:
+    """``n`` Bernoulli rows whose interest column is a random permutation of ``0..n-1``.
+
+    Every row has its own interest value, so every row is its own binomial group and the Markov
+    chains work on ``n`` groups (few distinct values would merge the rows into a few groups).
+    Exactly ``round(event_share * n)`` events, at random rows.  With ``nuisance_levels`` > 0 there
+    is one nuisance column in ``0..nuisance_levels-1`` (the chains then take block moves);
+    otherwise the model is intercept only (swap moves).
+    """
+    rng = _rng(_DISTINCT, n, round(event_share * 1000), nuisance_levels)
+    y = np.zeros(n, dtype=np.int64)
+    y[rng.choice(n, size=round(event_share * n), replace=False)] = 1
+    interest = rng.permutation(n)
+    nuisance = (rng.integers(0, nuisance_levels, size=n) if nuisance_levels > 0
+                else np.zeros((n, 0), dtype=np.int64))
+    label = f"distinct n={n}" + (f", w in 0..{nuisance_levels - 1}" if nuisance_levels else "")
+    return RawDesign(label, y, interest, nuisance)
+
+
+def integer_covariate_design(n: int, n_events: int, levels: int) -> RawDesign:
+    """Intercept only: ``n`` Bernoulli rows, exactly ``n_events`` events at random rows, and an
+    interest column in ``0..levels-1`` (so at most ``levels`` binomial groups)."""
+    rng = _rng(_INTEGER_COVARIATE, n, n_events, levels)
+    y = np.zeros(n, dtype=np.int64)
+    y[rng.choice(n, size=n_events, replace=False)] = 1
+    interest = rng.integers(0, levels, size=n)
+    return RawDesign(f"n={n}, {n_events} events, z in 0..{levels - 1}", y, interest,
+                     np.zeros((n, 0), dtype=np.int64))

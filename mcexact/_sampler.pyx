@@ -388,10 +388,15 @@ def run_chain(object bit_generator,
               int64_t burn,
               int64_t thin,
               int64_t[:, ::1] out,
-              int64_t[::1] counters):
+              int64_t[::1] counters,
+              int64_t[::1] swap_sets,
+              bint sets_ready):
     """Run one chain: `burn` moves, then `out.shape[0]` records of T, one every `thin` moves.
 
-    `y` (the state, in stage order) is updated in place, so a chain can be continued exactly.
+    `y` (the state, in stage order) is updated in place, and so is `swap_sets` (6K + 2H int64:
+    the per-stratum lists of groups that can give or take an event, with their positions and
+    sizes), built from `y` unless `sets_ready`: swap proposals pick groups by their place in these
+    lists, so continuing a chain exactly needs them as they were.
     `counters` receives [moves, accepted moves, moves skipped because a block's fiber was too
     large]. All arrays are validated by the caller.
     """
@@ -407,12 +412,14 @@ def run_chain(object bit_generator,
     cdef int64_t[::1] informative = np.array(
         [hh for hh in range(H) if size[hh] >= 2], dtype=np.int64)
     cdef int64_t[::1] T = np.zeros(q, dtype=np.int64)
-    cdef int64_t[::1] down_list = np.zeros(K, dtype=np.int64)
-    cdef int64_t[::1] down_pos = np.full(K, -1, dtype=np.int64)
-    cdef int64_t[::1] down_count = np.zeros(H, dtype=np.int64)
-    cdef int64_t[::1] up_list = np.zeros(K, dtype=np.int64)
-    cdef int64_t[::1] up_pos = np.full(K, -1, dtype=np.int64)
-    cdef int64_t[::1] up_count = np.zeros(H, dtype=np.int64)
+    if swap_sets.shape[0] != 4 * K + 2 * H:
+        raise ValueError("mcexact: swap_sets must hold 4K + 2H entries")
+    cdef int64_t[::1] down_list = swap_sets[0:K]
+    cdef int64_t[::1] down_pos = swap_sets[K:2 * K]
+    cdef int64_t[::1] up_list = swap_sets[2 * K:3 * K]
+    cdef int64_t[::1] up_pos = swap_sets[3 * K:4 * K]
+    cdef int64_t[::1] down_count = swap_sets[4 * K:4 * K + H]
+    cdef int64_t[::1] up_count = swap_sets[4 * K + H:4 * K + 2 * H]
     cdef int64_t[::1] block = np.zeros(C_MAX_BLOCK, dtype=np.int64)
     cdef int64_t[::1] cons = np.zeros(C_MAX_BLOCK * n_cons_max, dtype=np.int64)
     cdef int64_t[::1] target = np.zeros(n_cons_max, dtype=np.int64)
@@ -457,9 +464,18 @@ def run_chain(object bit_generator,
     c.up_pos = &up_pos[0]
     c.up_count = &up_count[0]
 
+    if not sets_ready:
+        for g in range(K):
+            down_pos[g] = -1
+            up_pos[g] = -1
+        for h in range(H):
+            down_count[h] = 0
+            up_count[h] = 0
     for g in range(K):
         for i in range(q):
             T[i] += y[g] * z[g, i]
+        if sets_ready:
+            continue
         h = stratum[g]
         if y[g] > 0:
             set_add(c.down_list, c.down_pos, c.down_count, start[h], h, g)

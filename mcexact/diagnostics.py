@@ -190,7 +190,7 @@ def _ess_core(x: np.ndarray) -> float:
     rho = 1.0 - (within - acov) / var_plus
     rho[0] = 1.0
 
-    # Pairs are scanned while both their lags lie below n - 2 (the reference implementation's
+    # Pair j >= 1 is scanned only while 2j - 1 < n - 3 (the reference implementation's loop
     # bound), i.e. j <= ceil((n - 4) / 2).
     last_pair = max(0, -(-(n - 4) // 2))
     pairs = rho[0:2 * last_pair + 2:2] + rho[1:2 * last_pair + 2:2]

@@ -307,6 +307,36 @@ def _batches(dist: ConditionalDistribution, n_batches: int = 10):
     return out
 
 
+# A support point is "unsure" when its statistic differs from the observed one by less than this
+# many standard errors of that difference (normal quantile of a two-sided 95% band).
+_UNSURE_Z = 1.96
+
+
+def _unsure_points(result, batch_diffs: list, dist: ConditionalDistribution) -> np.ndarray:
+    """Support points whose side of the observed statistic the draws do not settle.
+
+    Tests that rank points by quantities estimated from the draws (moments, point probabilities,
+    the likelihood's supremum) can put a point that nearly ties the observed value on either side;
+    the indicator's error cannot show that jump. The difference ``stat(u) - stat(t)`` is computed
+    on every batch; its spread over B batches, divided by sqrt(B), is the standard error of the
+    full run's difference (batch means). Points within ``_UNSURE_Z`` such errors of zero are
+    unsure.
+    """
+    unsure = np.zeros(dist.n_points, dtype=bool)
+    if len(batch_diffs) < 2 or result.values is None:
+        return unsure
+    diffs = np.asarray(batch_diffs, float)
+    with np.errstate(invalid="ignore"):
+        se = np.nanstd(diffs, axis=0, ddof=1) / np.sqrt(diffs.shape[0])
+    full = result.values - result.observed_value
+    with np.errstate(invalid="ignore"):
+        unsure = np.abs(full) < _UNSURE_Z * se
+    unsure &= np.isfinite(se) & (se > 0)
+    if dist.observed_index is not None:
+        unsure[dist.observed_index] = False
+    return unsure
+
+
 def _test_mcse(indicator_mcse: float, batch_values: list, full_value: float) -> float:
     """A Monte Carlo p-value's error: the larger of the indicator's error and the error of the
     p-value re-computed on batches, widened by an estimate of the plug-in bias.
@@ -356,6 +386,7 @@ def _test_rows(effect: str, dist: ConditionalDistribution, engine: str) -> list:
                                  for c in dist.chain_index))
     batch_p = {t.test: [] for t in results}
     batch_mid = {t.test: [] for t in results}
+    batch_counted = {t.test: [] for t in results}
     if dist.is_monte_carlo:
         which = tuple(t.test for t in results
                       if t.test != "likelihood_ratio" or dist.n_points <= _BATCH_LR_POINTS)
@@ -363,6 +394,8 @@ def _test_rows(effect: str, dist: ConditionalDistribution, engine: str) -> list:
             for bt in joint_tests(piece, which):
                 batch_p[bt.test].append(bt.p_value)
                 batch_mid[bt.test].append(bt.mid_p_value)
+                if bt.values is not None:
+                    batch_counted[bt.test].append(bt.values - bt.observed_value)
     for t in results:
         row = {"effect": effect, "test": t.test, "statistic": t.statistic,
                "p_value": t.p_value, "mid_p_value": t.mid_p_value, "df": t.df,
@@ -375,10 +408,27 @@ def _test_rows(effect: str, dist: ConditionalDistribution, engine: str) -> list:
                            "p-value is not reliable (use the score or likelihood-ratio test, or "
                            "more draws)")
         elif dist.is_monte_carlo and t.more is not None:
-            row["mcse"] = _test_mcse(mcse_of_indicator(dist, (t.more | t.tie).astype(float)),
-                                     batch_p[t.test], t.p_value)
-            row["mcse_mid_p"] = _test_mcse(mcse_of_indicator(dist, t.more + 0.5 * t.tie),
-                                           batch_mid[t.test], t.mid_p_value)
+            more, tie = t.more.copy(), t.tie.copy()
+            unsure = _unsure_points(t, batch_counted[t.test], dist)
+            p0 = np.exp(dist.log_weights - logsumexp(dist.log_weights))
+            half_unsure = 0.5 * float(p0[unsure].sum())
+            if unsure.any():
+                # Count points whose side of the observed statistic the draws cannot settle as
+                # half in, and half their probability as error, so the interval covers both.
+                more[unsure] = tie[unsure] = False
+                row["p_value"] = float(p0[more | tie].sum()) + half_unsure
+                row["mid_p_value"] = float(p0[more].sum() + 0.5 * p0[tie].sum()) + half_unsure
+                row["note"] = (f"{int(unsure.sum())} support points were ranked against the "
+                               "observed value differently on batches of the draws; they count "
+                               "half, within the Monte Carlo error")
+            values = more + tie + 0.5 * unsure
+            mid_values = more + 0.5 * tie + 0.5 * unsure
+            row["mcse"] = float(np.hypot(_test_mcse(mcse_of_indicator(dist, values),
+                                                    batch_p[t.test], row["p_value"]),
+                                         half_unsure))
+            row["mcse_mid_p"] = float(np.hypot(_test_mcse(mcse_of_indicator(dist, mid_values),
+                                                          batch_mid[t.test], row["mid_p_value"]),
+                                               half_unsure))
         rows.append(row)
     return rows
 

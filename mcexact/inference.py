@@ -75,6 +75,9 @@ class TestResult:
     more, tie : ndarray of bool or None
         Per support point: strictly more extreme than observed, and tied with it (for Monte Carlo
         errors of the p-values).
+    values, observed_value : ndarray, float
+        The statistic at every support point and at the observed one, oriented so that larger is
+        more extreme (the probability test's is -log f0).
     """
 
     test: str
@@ -85,6 +88,8 @@ class TestResult:
     note: str = ""
     more: np.ndarray | None = field(default=None, repr=False, compare=False)
     tie: np.ndarray | None = field(default=None, repr=False, compare=False)
+    values: np.ndarray | None = field(default=None, repr=False, compare=False)
+    observed_value: float = field(default=np.nan, repr=False, compare=False)
 
 
 @dataclass(frozen=True)
@@ -307,10 +312,11 @@ def _masks(stat: np.ndarray, obs: float, larger_is_extreme: bool = True):
     return more, tie
 
 
-def _result(name: str, statistic: float, more, tie, p0, q: int, note: str = "") -> TestResult:
+def _result(name: str, statistic: float, more, tie, p0, q: int, values, observed_value,
+            note: str = "") -> TestResult:
     p_more, p_tie = float(p0[more].sum()), float(p0[tie].sum())
     return TestResult(name, statistic, min(1.0, p_more + p_tie), min(1.0, p_more + 0.5 * p_tie),
-                      q, note, more, tie)
+                      q, note, more, tie, np.asarray(values, float), float(observed_value))
 
 
 def _sup_loglik(targets: np.ndarray, T: np.ndarray, lw: np.ndarray,
@@ -535,7 +541,7 @@ def joint_tests(dist: ConditionalDistribution,
     inv = np.linalg.pinv(cov, rcond=1e-10, hermitian=True)
     Q = np.einsum("ni,ij,nj->n", Tc, inv, Tc)
     q_obs = float(tc @ inv @ tc)
-    results.append(_result("score", q_obs, *_masks(Q, q_obs), p0, q))
+    results.append(_result("score", q_obs, *_masks(Q, q_obs), p0, q, Q, q_obs))
 
     # Probability test: small probability is extreme; compared on the log scale, where the
     # tolerance is absolute (a relative tolerance on the probabilities).
@@ -543,7 +549,8 @@ def joint_tests(dist: ConditionalDistribution,
     with np.errstate(invalid="ignore"):
         more = log_p0 < lp_obs - TIE_RTOL
         tie = np.abs(log_p0 - lp_obs) <= TIE_RTOL
-    results.append(_result("probability", float(np.exp(lp_obs)), more, tie, p0, q))
+    results.append(_result("probability", float(np.exp(lp_obs)), more, tie, p0, q, -log_p0,
+                           -lp_obs))
 
     results = [r for r in results if r.test in tests]
     if "likelihood_ratio" not in tests:
@@ -555,7 +562,7 @@ def joint_tests(dist: ConditionalDistribution,
     G = 2.0 * (_lr_statistics(Tz, lw, obs, vertices) + logsumexp(lw))
     G = np.maximum(G, 0.0)
     g_obs = float(G[obs]) if obs is not None else np.nan
-    results.append(_result("likelihood_ratio", g_obs, *_masks(G, g_obs), p0, q))
+    results.append(_result("likelihood_ratio", g_obs, *_masks(G, g_obs), p0, q, G, g_obs))
     return results
 
 

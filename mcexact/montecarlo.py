@@ -304,12 +304,18 @@ def draw_direct(net, design, options: SamplerOptions, seeds, beta=None,
         arc_logp = _tilted_logp(net, theta)
     flat = _flatten(net, arc_logp)
     z = np.ascontiguousarray(prob.interest, dtype=np.int64)
+    from mcexact.exact import design_key
+
+    key = design_key(design)
+    seeds = _check_seeds(seeds, options)
+    _check_continuation(continue_from, "direct", key, options, beta)
     sizes = options.per_chain()
     states = ([s["bit_generator"] for s in continue_from.states] if continue_from is not None
               else [None] * len(sizes))
-    results = Parallel(n_jobs=options.n_jobs, backend=options.backend, prefer="threads")(
-        delayed(_direct_worker)(flat, z, n, seed, st)
-        for n, seed, st in zip(sizes, seeds, states))
+    config, parallel = _parallel(options)
+    with config:
+        results = parallel(delayed(_direct_worker)(flat, z, n, seed, st)
+                           for n, seed, st in zip(sizes, seeds, states))
     chains = [r[0] * prob.interest_step + prob.interest_offset for r in results]
     from mcexact.exact import interest_ranges
 
@@ -321,7 +327,8 @@ def draw_direct(net, design, options: SamplerOptions, seeds, beta=None,
                   support_max=hi[0] * prob.interest_step + prob.interest_offset, beta=beta_arr,
                   states=[{"bit_generator": r[1]} for r in results],
                   seconds=time.perf_counter() - t0, null_mean=mean, null_cov=cov,
-                  info={"nuisance_nodes": net.n_nodes, "nuisance_arcs": net.n_arcs})
+                  info={"nuisance_nodes": net.n_nodes, "nuisance_arcs": net.n_arcs,
+                        "design_key": key})
 
 
 # -- Markov chains ----------------------------------------------------------------------------
@@ -337,17 +344,65 @@ def default_block_size(n_nuisance: int) -> int:
     return int(min(_sampler.MAX_BLOCK, max(8, 6 + 2 * n_nuisance)))
 
 
-def _mcmc_worker(arrays, y0, n, seed, move, block_size, warmup, thin, state=None):
+def _mcmc_worker(arrays, y0, n, seed, move, block_size, warmup, thin, state=None, sets=None):
     bg = np.random.PCG64(seed)
     if state is not None:
         bg.state = state
     y = np.array(y0, dtype=np.int64, copy=True)
+    K, H = arrays["m"].shape[0], arrays["start"].shape[0]
+    ready = sets is not None
+    sets = (np.array(sets, dtype=np.int64, copy=True) if ready
+            else np.zeros(4 * K + 2 * H, dtype=np.int64))
     out = np.empty((n, arrays["z"].shape[1]), dtype=np.int64)
     counters = np.zeros(3, dtype=np.int64)
     _sampler.run_chain(bg, y, arrays["m"], arrays["z"], arrays["w"], arrays["stratum"],
                        arrays["start"], arrays["size"], arrays["theta"], arrays["log_fact"],
-                       arrays["fixed"], move, block_size, warmup, thin, out, counters)
-    return out, counters, y, bg.state
+                       arrays["fixed"], move, block_size, warmup, thin, out, counters, sets,
+                       ready)
+    return out, counters, y, bg.state, sets
+
+
+def _parallel(options: SamplerOptions):
+    """joblib's Parallel for the chains. A named backend is set through parallel_config, which is
+    how joblib selects externally registered backends such as dask's."""
+    import contextlib
+
+    import joblib
+
+    if options.backend is None:
+        return contextlib.nullcontext(), Parallel(n_jobs=options.n_jobs, prefer="threads")
+    if options.backend == "dask":
+        try:
+            import distributed  # noqa: F401  (registers joblib's "dask" backend)
+        except ImportError as exc:
+            raise DataError("backend='dask' needs the dask.distributed package "
+                            "(pip install 'mcexact[cluster]')") from exc
+    return (joblib.parallel_config(backend=options.backend, n_jobs=options.n_jobs),
+            Parallel(n_jobs=options.n_jobs))
+
+
+def _check_seeds(seeds, options: SamplerOptions) -> list:
+    seeds = list(seeds)
+    if len(seeds) != options.n_chains:
+        raise DataError(f"{len(seeds)} seeds given for {options.n_chains} chains")
+    return seeds
+
+
+def _check_continuation(previous, engine: str, design_key: str, options: SamplerOptions, beta):
+    if previous is None:
+        return
+    if previous.engine != engine:
+        raise DataError(f"cannot continue a {previous.engine} sample with the {engine} engine")
+    if len(previous.states) != options.n_chains:
+        raise DataError(f"the sample to continue has {len(previous.states)} chains, not "
+                        f"{options.n_chains}")
+    if previous.info.get("design_key") != design_key:
+        raise DataError("the sample to continue was drawn for another design")
+    same_tilt = (previous.beta is None and beta is None) or (
+        previous.beta is not None and beta is not None
+        and np.array_equal(previous.beta, np.asarray(beta, float).reshape(-1)))
+    if not same_tilt:
+        raise DataError("the sample to continue was drawn at another tilt")
 
 
 def draw_mcmc(design, options: SamplerOptions, seeds, beta=None, continue_from=None) -> Sample:
@@ -377,27 +432,38 @@ def draw_mcmc(design, options: SamplerOptions, seeds, beta=None, continue_from=N
         "size": (rc.ends - rc.starts).astype(np.int64), "theta": np.ascontiguousarray(theta),
         "log_fact": gammaln(np.arange(int(rc.trials.max()) + 2) + 1.0), "fixed": rc.fixed,
     }
+    from mcexact.exact import design_key
+
+    key = design_key(design)
+    seeds = _check_seeds(seeds, options)
+    _check_continuation(continue_from, "mcmc", key, options, beta)
     sizes = options.per_chain()
     if continue_from is not None:
         starts = [s["y"] for s in continue_from.states]
         states = [s["bit_generator"] for s in continue_from.states]
+        sets = [s.get("swap_sets") for s in continue_from.states]
         warmup = 0
     else:
         starts = [rc.events] * len(sizes)
         states = [None] * len(sizes)
+        sets = [None] * len(sizes)
         warmup = int(options.n_warmup)
-    results = Parallel(n_jobs=options.n_jobs, backend=options.backend, prefer="threads")(
-        delayed(_mcmc_worker)(arrays, y0, n, seed, move, block, warmup, int(options.thin), st)
-        for y0, n, seed, st in zip(starts, sizes, seeds, states))
+    config, parallel = _parallel(options)
+    with config:
+        results = parallel(
+            delayed(_mcmc_worker)(arrays, y0, n, seed, move, block, warmup, int(options.thin),
+                                  st, ss)
+            for y0, n, seed, st, ss in zip(starts, sizes, seeds, states, sets))
     chains = [r[0] * rc.step + rc.offset for r in results]
     return Sample("mcmc", chains, np.asarray(design.observed_interest, np.int64),
                   tuple(design.interest_names), np.asarray(design.interest_scales, float),
                   beta=beta_arr, counters=[r[1] for r in results],
-                  states=[{"y": r[2], "bit_generator": r[3]} for r in results],
+                  states=[{"y": r[2], "bit_generator": r[3], "swap_sets": r[4]}
+                          for r in results],
                   seconds=time.perf_counter() - t0,
                   info={"move": "swap" if move == _sampler.MOVE_SWAP else "block",
                         "block_size": None if move == _sampler.MOVE_SWAP else block,
-                        "thin": int(options.thin), "n_warmup": warmup})
+                        "thin": int(options.thin), "n_warmup": warmup, "design_key": key})
 
 
 # -- Monte Carlo standard errors ----------------------------------------------------------------

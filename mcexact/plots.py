@@ -14,6 +14,17 @@ matplotlib is imported only when a function is called, so ``import mcexact`` wor
 
 Statistics are shown in the user's units: a support value on the coded integer scale is divided
 by the column's ``scales`` entry, so an axis reads as the sum of the covariate over the events.
+
+Examples
+--------
+>>> import mcexact
+>>> from mcexact.plots import plot_null_distribution
+>>> design = mcexact.Design.from_formula(mcexact.load_demo("small"),
+...                                      "elevation ~ dose_mg + age", strata="site")
+>>> fig = plot_null_distribution(mcexact.exact_distribution(design), "dose_mg")
+>>> fig.axes[0].get_xlabel()
+'T(dose_mg): sum of dose_mg over the events'
+>>> fig.savefig("dose_mg_null.png")  # doctest: +SKIP
 """
 
 from __future__ import annotations
@@ -53,7 +64,7 @@ _MAX_CURVE_POINTS = 2000
 
 # -- shared helpers -------------------------------------------------------------------------------
 
-def _new_figure(figsize: tuple[float, float]) -> "Figure":
+def _new_figure(figsize: tuple[float, float]) -> Figure:
     """A figure with constrained layout, importing matplotlib only now."""
     try:
         from matplotlib.figure import Figure
@@ -136,9 +147,9 @@ def _sample_size_text(dist: ConditionalDistribution) -> str:
     return f"{dist.n_draws:,} draws, {n_chains} {kind}{'s' if n_chains != 1 else ''}"
 
 
-# -- trace ------------------------------------------------------------------------------------------
+# -- trace ----------------------------------------------------------------------------------------
 
-def plot_trace(dist: ConditionalDistribution, column: int | str = 0) -> "Figure":
+def plot_trace(dist: ConditionalDistribution, column: int | str = 0) -> Figure:
     """Draw-by-draw path of one statistic along each Monte Carlo chain.
 
     One step line per chain (the statistic is an integer count, so it moves in jumps) and a
@@ -182,7 +193,7 @@ def plot_trace(dist: ConditionalDistribution, column: int | str = 0) -> "Figure"
     return fig
 
 
-# -- running p-value --------------------------------------------------------------------------------
+# -- running p-value ------------------------------------------------------------------------------
 
 def _round_robin(lengths: Sequence[int]) -> tuple[np.ndarray, np.ndarray]:
     """Chain and within-chain position of each pooled draw, taking the chains in turn.
@@ -206,7 +217,8 @@ def _binomial_mcse(p: np.ndarray, n: np.ndarray) -> np.ndarray:
     return np.sqrt(np.maximum(p * (1.0 - p), floor) / n)
 
 
-def _batch_means_mcse(cumsums: list[np.ndarray], used: np.ndarray, grand: np.ndarray) -> np.ndarray:
+def _batch_means_mcse(cumsums: list[np.ndarray], used: np.ndarray,
+                      grand: np.ndarray) -> np.ndarray:
     """Batch-means MCSE of the pooled mean of the first ``used[k, c]`` draws of each chain c.
 
     The estimator of :func:`mcexact.montecarlo.mcse_of_indicator` (Flegal & Jones 2010) applied to
@@ -266,7 +278,7 @@ def _indicator(dist: ConditionalDistribution, more, tie, mid_p: bool) -> np.ndar
 
 
 def plot_running_pvalue(dist: ConditionalDistribution, more, tie, *, exact: float | None = None,
-                        mid_p: bool = False) -> "Figure":
+                        mid_p: bool = False) -> Figure:
     """A Monte Carlo p-value as the draws accumulate, with a band of two standard errors.
 
     Each draw contributes the indicator ``more[idx] + tie[idx]`` (``+ 0.5 * tie[idx]`` for the
@@ -397,6 +409,7 @@ def _autocorrelation_fft(x: np.ndarray, max_lag: int) -> np.ndarray:
     size = 1 << int(2 * n - 1).bit_length()
     spectrum = np.fft.rfft(centred, size)
     acov = np.fft.irfft(spectrum * np.conj(spectrum), size)[:min(max_lag + 1, n)]
+    # A constant chain leaves only rounding noise at lag 0 (relative to the values' size).
     if acov[0] <= 1e-12 * max(1.0, float(np.max(np.abs(x))) ** 2) * n:
         return out
     out[:acov.shape[0]] = acov / acov[0]
@@ -404,26 +417,32 @@ def _autocorrelation_fft(x: np.ndarray, max_lag: int) -> np.ndarray:
 
 
 def _chain_autocorrelations(values: list[np.ndarray], max_lag: int) -> np.ndarray:
-    """(chain, lag) autocorrelations, by ``mcexact.diagnostics.autocorrelation`` when it exists.
+    """(chain, lag) autocorrelations for lags 0..max_lag, NaN beyond a chain's length.
 
-    That function takes a (chain, draw) array, so it is used only when all chains have the same
-    length and it returns lags 0..max_lag; otherwise this module's FFT estimator is used.
+    By :func:`mcexact.diagnostics.autocorrelation` when that module can be imported: it takes a
+    (chain, draw) array, so only when all chains have the same length (of at least 2), and asked
+    for no lag beyond the chains' length. Otherwise (ragged chains after a slice, or no such
+    module) this module's FFT estimator, which is the same divisor-n estimator.
     """
     lengths = {v.shape[0] for v in values}
-    if len(lengths) == 1:
+    n = lengths.pop() if len(lengths) == 1 else 0
+    if n >= 2:
         try:
             from mcexact.diagnostics import autocorrelation
         except ImportError:
             autocorrelation = None
         if autocorrelation is not None:
-            result = np.asarray(autocorrelation(np.vstack(values), max_lag), dtype=np.float64)
-            if result.shape == (len(values), max_lag + 1):
-                return result
+            lag = min(max_lag, n - 1)
+            result = np.asarray(autocorrelation(np.vstack(values), lag), dtype=np.float64)
+            if result.shape == (len(values), lag + 1):
+                out = np.full((len(values), max_lag + 1), np.nan)
+                out[:, :lag + 1] = result
+                return out
     return np.vstack([_autocorrelation_fft(v, max_lag) for v in values])
 
 
 def plot_autocorrelation(dist: ConditionalDistribution, column: int | str = 0,
-                         max_lag: int = 50) -> "Figure":
+                         max_lag: int = 50) -> Figure:
     """Autocorrelation of one drawn statistic within each chain, against the lag.
 
     Computed by :func:`mcexact.diagnostics.autocorrelation` when that module is available and the
@@ -459,7 +478,7 @@ def plot_autocorrelation(dist: ConditionalDistribution, column: int | str = 0,
             or max_lag < 1:
         raise DataError(f"max_lag must be a positive integer, got {max_lag!r}")
     max_lag = int(max_lag)
-    values = [v for v in _chain_values(dist, j)]
+    values = _chain_values(dist, j)
     acf = _chain_autocorrelations(values, max_lag)
     lags = np.arange(max_lag + 1)
     fig = _new_figure((8.0, 4.0))
@@ -489,7 +508,7 @@ def plot_autocorrelation(dist: ConditionalDistribution, column: int | str = 0,
     return fig
 
 
-# -- one-column null distribution ---------------------------------------------------------------------
+# -- one-column null distribution -----------------------------------------------------------------
 
 def _slice(dist: ConditionalDistribution, keep: Sequence[int]) -> ConditionalDistribution:
     """`dist` restricted to the columns `keep`, the others fixed at their observed values."""
@@ -521,7 +540,7 @@ def _tilt_for(dist: ConditionalDistribution, j: int, beta) -> float:
 
 
 def plot_null_distribution(dist: ConditionalDistribution, column: int | str = 0,
-                           beta=None) -> "Figure":
+                           beta=None) -> Figure:
     """Bar chart of the conditional distribution of one statistic, observed value and tail marked.
 
     With several columns, the others are fixed at their observed values
@@ -617,7 +636,7 @@ def plot_null_distribution(dist: ConditionalDistribution, column: int | str = 0,
     return fig
 
 
-# -- two columns --------------------------------------------------------------------------------------
+# -- two columns ----------------------------------------------------------------------------------
 
 def _cell_edges(centres: np.ndarray) -> np.ndarray:
     """Edges of cells centred on sorted `centres`: midpoints, the ends half a gap outside."""
@@ -641,9 +660,8 @@ def _outline(inside: np.ndarray, x_edges: np.ndarray, y_edges: np.ndarray) -> li
     return segments
 
 
-def plot_joint(dist: ConditionalDistribution, columns: Sequence[int | str] = (0, 1)) -> "Figure":
-    """Two statistics at once: a grid of log10 probabilities, the observed cell and the region
-    of values more probable than it.
+def plot_joint(dist: ConditionalDistribution, columns: Sequence[int | str] = (0, 1)) -> Figure:
+    """Two statistics at once: a grid of log10 probabilities, the observed pair and its tail.
 
     Each cell is a pair of values of the two statistics (user's units; cells of unequal width
     where the values are unevenly spaced), coloured by log10 of its conditional probability;
