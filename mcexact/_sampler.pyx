@@ -94,10 +94,12 @@ def direct_draws(object bit_generator,
                 out[r, j] = 0
             node = 0
             for k in range(K):
-                u = draw_uniform(bg)
                 lo = node_arc_ptr[node]
                 hi = node_arc_ptr[node + 1] - 1
-                # First arc whose cumulative probability exceeds u (bisection: groups may be large).
+                if lo < hi:
+                    u = draw_uniform(bg)
+                # First arc whose cumulative probability exceeds u (bisection: groups may be large);
+                # a node with a single arc needs no draw.
                 while lo < hi:
                     mid = (lo + hi) >> 1
                     if arc_cum[mid] > u:
@@ -216,10 +218,15 @@ cdef int swap_move(Chain *c, bitgen_t *bg) noexcept nogil:
     # Set sizes after the move, for the Hastings factor |Up||Down| / (|Up'||Down'|).
     n_up2 = n_up - (1 if c.y[i] + 1 == c.m[i] else 0) + (1 if c.y[j] == c.m[j] else 0)
     n_down2 = n_down + (1 if c.y[i] == 0 else 0) - (1 if c.y[j] == 1 else 0)
-    ratio = (<double> (c.m[i] - c.y[i]) / (c.y[i] + 1)) * (<double> c.y[j] / (c.m[j] - c.y[j] + 1))
-    ratio *= exp(c.theta[i] - c.theta[j]) * (<double> (n_up * n_down)) / (n_up2 * n_down2)
-    if ratio < 1.0 and draw_uniform(bg) >= ratio:
-        return 0
+    # Binary rows with equal tilts and unchanged set sizes (always so for 0/1 rows untilted):
+    # the ratio is exactly 1, so the move is accepted without floating point.
+    if not (c.m[i] == 1 and c.m[j] == 1 and n_up2 == n_up and n_down2 == n_down
+            and c.theta[i] == c.theta[j]):
+        ratio = ((<double> (c.m[i] - c.y[i]) / (c.y[i] + 1))
+                 * (<double> c.y[j] / (c.m[j] - c.y[j] + 1)))
+        ratio *= exp(c.theta[i] - c.theta[j]) * (<double> (n_up * n_down)) / (n_up2 * n_down2)
+        if ratio < 1.0 and draw_uniform(bg) >= ratio:
+            return 0
     change_y(c, i, 1)
     change_y(c, j, -1)
     return 1
@@ -482,24 +489,28 @@ def run_chain(object bit_generator,
         if y[g] < m[g]:
             set_add(c.up_list, c.up_pos, c.up_count, start[h], h, g)
 
+    cdef int64_t countdown = burn + thin, moves = 0, changed = 0, skipped = 0
     with bit_generator.lock, nogil:
         rec = 0
-        step = 0
         while rec < n_rec:
             if move == MV_SWAP:
                 res = swap_move(&c, bg)
             else:
                 res = block_move(&c, bg, r)
-            counters[0] += 1
+            moves += 1
             if res == 1:
-                counters[1] += 1
+                changed += 1
             elif res == -1:
-                counters[2] += 1
-            step += 1
-            if step > burn and (step - burn) % thin == 0:
+                skipped += 1
+            countdown -= 1
+            if countdown == 0:
                 for i in range(q):
                     out[rec, i] = T[i]
                 rec += 1
+                countdown = thin
+        counters[0] += moves
+        counters[1] += changed
+        counters[2] += skipped
 
 
 def bounded_draws(object bit_generator, uint32_t bound, int64_t n):
