@@ -9,14 +9,13 @@ Two engines, both recording only the interest statistic T = Z'y of each draw (ne
   choosing at each stage an arc with its transition probability C(m, y) B(successor) / B(node)
   (Mehta, Patel & Senchaudhuri 2000). Every walk is an independent exact draw from the conditional
   distribution: no burn-in, no autocorrelation. A tilted target only changes the probabilities.
-* `run_chain` is a Markov chain on response vectors with the nuisance statistics fixed, for when
-  the nuisance network itself is too large. Its moves keep W'y (and the events of every stratum)
-  fixed by construction:
-  - *swap* (nuisance = intercept and/or strata only): one event moves from a group of a stratum to
-    another group of the same stratum; proposals pick the giving group among those with events and
-    the receiving group among those with room, and a Hastings factor corrects for those sets'
-    sizes, so the chain is exact for the null and for tilted targets;
-  - *block* (integer nuisance columns): a random block of r groups (half the time from one stratum,
+* Markov chains on response vectors with the nuisance statistics fixed, for when the nuisance
+  network itself is too large. Their moves keep W'y (and the events of every stratum) fixed by
+  construction:
+  - *swap* (`run_unit_swaps`; nuisance = intercept and/or strata only): an event trial and a
+    non-event trial of one stratum exchange their outcomes, exact for the null and for tilted
+    targets (see the function);
+  - *block* (`run_chain`; integer nuisance columns): a random block of r groups (half the time from one stratum,
     half the time from anywhere) is redrawn from its exact conditional distribution given the rest,
     over the small fiber {x : W_A'x = W_A'y_A, stratum counts of A fixed, 0 <= x <= m_A}
     enumerated by depth-first search with bound pruning. A Gibbs move: always accepted. A block
@@ -40,8 +39,6 @@ from mcexact._random cimport draw_bounded, draw_uniform
 cnp.import_array()
 
 cdef enum:
-    MV_SWAP = 0
-    MV_BLOCK = 1
     # Largest block a move may redraw, and how large a block's fiber (or its search) may be
     # before the move is skipped: enumeration costs grow with the fiber, and blocks this large
     # already mix well.
@@ -49,8 +46,6 @@ cdef enum:
     C_MAX_FIBER = 4096
     C_MAX_VISITS = 200000
 
-MOVE_SWAP = MV_SWAP
-MOVE_BLOCK = MV_BLOCK
 MAX_BLOCK = C_MAX_BLOCK
 MAX_FIBER = C_MAX_FIBER
 
@@ -130,15 +125,6 @@ cdef struct Chain:
     # State
     int64_t *y
     int64_t *T
-    # Swap bookkeeping: per stratum, the groups that can give an event (down) or take one (up)
-    int64_t *down_list
-    int64_t *down_pos
-    int64_t *down_count
-    int64_t *up_list
-    int64_t *up_pos
-    int64_t *up_count
-    const int64_t *informative  # strata with at least two groups
-    int64_t n_informative
     # Block scratch
     int64_t r
     int64_t *block
@@ -160,76 +146,12 @@ cdef inline double log_binom(const Chain *c, int64_t m, int64_t y) noexcept nogi
     return c.log_fact[m] - c.log_fact[y] - c.log_fact[m - y]
 
 
-cdef inline void set_remove(int64_t *lst, int64_t *pos, int64_t *count, int64_t base,
-                            int64_t h, int64_t g) noexcept nogil:
-    cdef int64_t i = pos[g]
-    cdef int64_t last = lst[base + count[h] - 1]
-    lst[i] = last
-    pos[last] = i
-    pos[g] = -1
-    count[h] -= 1
-
-
-cdef inline void set_add(int64_t *lst, int64_t *pos, int64_t *count, int64_t base,
-                         int64_t h, int64_t g) noexcept nogil:
-    cdef int64_t i = base + count[h]
-    lst[i] = g
-    pos[g] = i
-    count[h] += 1
-
-
 cdef inline void change_y(Chain *c, int64_t g, int64_t delta) noexcept nogil:
-    """Add `delta` events to group g, keeping T and the swap sets in step."""
-    cdef int64_t h = c.stratum[g]
-    cdef int64_t base = c.start[h]
-    cdef int64_t old = c.y[g]
-    cdef int64_t new = old + delta
+    """Add `delta` events to group g, keeping T in step."""
     cdef Py_ssize_t j
-    c.y[g] = new
+    c.y[g] += delta
     for j in range(c.q):
         c.T[j] += delta * c.z[g * c.q + j]
-    if c.down_list != NULL:
-        if old == 0 and new > 0:
-            set_add(c.down_list, c.down_pos, c.down_count, base, h, g)
-        elif old > 0 and new == 0:
-            set_remove(c.down_list, c.down_pos, c.down_count, base, h, g)
-        if old == c.m[g] and new < c.m[g]:
-            set_add(c.up_list, c.up_pos, c.up_count, base, h, g)
-        elif old < c.m[g] and new == c.m[g]:
-            set_remove(c.up_list, c.up_pos, c.up_count, base, h, g)
-
-
-cdef int swap_move(Chain *c, bitgen_t *bg) noexcept nogil:
-    """One event from group j to group i of a random stratum. Returns 1 if accepted."""
-    cdef int64_t h, i, j, base, n_up, n_down, n_up2, n_down2
-    cdef double ratio
-    if c.n_informative == 0:
-        return 0
-    h = c.informative[draw_bounded(bg, <uint32_t> c.n_informative)]
-    base = c.start[h]
-    n_up = c.up_count[h]
-    n_down = c.down_count[h]
-    if n_up == 0 or n_down == 0:
-        return 0
-    i = c.up_list[base + draw_bounded(bg, <uint32_t> n_up)]
-    j = c.down_list[base + draw_bounded(bg, <uint32_t> n_down)]
-    if i == j:
-        return 0
-    # Set sizes after the move, for the Hastings factor |Up||Down| / (|Up'||Down'|).
-    n_up2 = n_up - (1 if c.y[i] + 1 == c.m[i] else 0) + (1 if c.y[j] == c.m[j] else 0)
-    n_down2 = n_down + (1 if c.y[i] == 0 else 0) - (1 if c.y[j] == 1 else 0)
-    # Binary rows with equal tilts and unchanged set sizes (always so for 0/1 rows untilted):
-    # the ratio is exactly 1, so the move is accepted without floating point.
-    if not (c.m[i] == 1 and c.m[j] == 1 and n_up2 == n_up and n_down2 == n_down
-            and c.theta[i] == c.theta[j]):
-        ratio = ((<double> (c.m[i] - c.y[i]) / (c.y[i] + 1))
-                 * (<double> c.y[j] / (c.m[j] - c.y[j] + 1)))
-        ratio *= exp(c.theta[i] - c.theta[j]) * (<double> (n_up * n_down)) / (n_up2 * n_down2)
-        if ratio < 1.0 and draw_uniform(bg) >= ratio:
-            return 0
-    change_y(c, i, 1)
-    change_y(c, j, -1)
-    return 1
 
 
 cdef void enumerate_block(Chain *c, int64_t k, double lw) noexcept nogil:
@@ -390,22 +312,17 @@ def run_chain(object bit_generator,
               const double[::1] theta,
               const double[::1] log_fact,
               bint fixed,
-              int move,
               int64_t block_size,
               int64_t burn,
               int64_t thin,
               int64_t[:, ::1] out,
-              int64_t[::1] counters,
-              int64_t[::1] swap_sets,
-              bint sets_ready):
-    """Run one chain: `burn` moves, then `out.shape[0]` records of T, one every `thin` moves.
+              int64_t[::1] counters):
+    """Run one block-move chain: `burn` moves, then `out.shape[0]` records of T, one every
+    `thin` moves.
 
-    `y` (the state, in stage order) is updated in place, and so is `swap_sets` (6K + 2H int64:
-    the per-stratum lists of groups that can give or take an event, with their positions and
-    sizes), built from `y` unless `sets_ready`: swap proposals pick groups by their place in these
-    lists, so continuing a chain exactly needs them as they were.
-    `counters` receives [moves, accepted moves, moves skipped because a block's fiber was too
-    large]. All arrays are validated by the caller.
+    `y` (the state, in stage order) is updated in place, so a chain can be continued exactly.
+    `counters` receives [moves, moves that changed y, moves skipped because a block's fiber was
+    too large]. All arrays are validated by the caller.
     """
     cdef bitgen_t *bg = _bitgen(bit_generator)
     cdef Chain c
@@ -416,17 +333,7 @@ def run_chain(object bit_generator,
     cdef int64_t i, h, g, rec, step, res
     cdef int64_t r = block_size if block_size < C_MAX_BLOCK else C_MAX_BLOCK
     cdef int64_t n_cons_max = w.shape[1] + r
-    cdef int64_t[::1] informative = np.array(
-        [hh for hh in range(H) if size[hh] >= 2], dtype=np.int64)
     cdef int64_t[::1] T = np.zeros(q, dtype=np.int64)
-    if swap_sets.shape[0] != 4 * K + 2 * H:
-        raise ValueError("mcexact: swap_sets must hold 4K + 2H entries")
-    cdef int64_t[::1] down_list = swap_sets[0:K]
-    cdef int64_t[::1] down_pos = swap_sets[K:2 * K]
-    cdef int64_t[::1] up_list = swap_sets[2 * K:3 * K]
-    cdef int64_t[::1] up_pos = swap_sets[3 * K:4 * K]
-    cdef int64_t[::1] down_count = swap_sets[4 * K:4 * K + H]
-    cdef int64_t[::1] up_count = swap_sets[4 * K + H:4 * K + 2 * H]
     cdef int64_t[::1] block = np.zeros(C_MAX_BLOCK, dtype=np.int64)
     cdef int64_t[::1] cons = np.zeros(C_MAX_BLOCK * n_cons_max, dtype=np.int64)
     cdef int64_t[::1] target = np.zeros(n_cons_max, dtype=np.int64)
@@ -452,8 +359,6 @@ def run_chain(object bit_generator,
     c.fixed = fixed
     c.y = &y[0]
     c.T = &T[0]
-    c.informative = &informative[0] if informative.shape[0] > 0 else &dummy
-    c.n_informative = informative.shape[0]
     c.r = r
     c.block = &block[0]
     c.cons = &cons[0]
@@ -464,39 +369,16 @@ def run_chain(object bit_generator,
     c.x = &xbuf[0]
     c.fiber = &fiber[0]
     c.fiber_lw = &fiber_lw[0]
-    c.down_list = &down_list[0]
-    c.down_pos = &down_pos[0]
-    c.down_count = &down_count[0]
-    c.up_list = &up_list[0]
-    c.up_pos = &up_pos[0]
-    c.up_count = &up_count[0]
 
-    if not sets_ready:
-        for g in range(K):
-            down_pos[g] = -1
-            up_pos[g] = -1
-        for h in range(H):
-            down_count[h] = 0
-            up_count[h] = 0
     for g in range(K):
         for i in range(q):
             T[i] += y[g] * z[g, i]
-        if sets_ready:
-            continue
-        h = stratum[g]
-        if y[g] > 0:
-            set_add(c.down_list, c.down_pos, c.down_count, start[h], h, g)
-        if y[g] < m[g]:
-            set_add(c.up_list, c.up_pos, c.up_count, start[h], h, g)
 
     cdef int64_t countdown = burn + thin, moves = 0, changed = 0, skipped = 0
     with bit_generator.lock, nogil:
         rec = 0
         while rec < n_rec:
-            if move == MV_SWAP:
-                res = swap_move(&c, bg)
-            else:
-                res = block_move(&c, bg, r)
+            res = block_move(&c, bg, r)
             moves += 1
             if res == 1:
                 changed += 1
@@ -522,3 +404,79 @@ def bounded_draws(object bit_generator, uint32_t bound, int64_t n):
         for i in range(n):
             total += draw_bounded(bg, bound)
     return total
+
+
+def run_unit_swaps(object bit_generator,
+                   int32_t[::1] ev_group,
+                   int64_t[:, ::1] ev_z,
+                   int32_t[::1] non_group,
+                   int64_t[:, ::1] non_z,
+                   const int64_t[::1] ev_start,
+                   const int64_t[::1] ev_count,
+                   const int64_t[::1] non_start,
+                   const int64_t[::1] non_count,
+                   const int64_t[::1] informative,
+                   const double[::1] theta,
+                   bint tilted,
+                   int64_t[::1] T,
+                   int64_t burn,
+                   int64_t thin,
+                   int64_t[:, ::1] out,
+                   int64_t[::1] counters):
+    """Swap chain over single trials ("units") for designs whose nuisance is the intercept and/or
+    strata: each stratum keeps the list of its event units and of its non-event units (with their
+    interest covariates inline), and a move exchanges a random event unit with a random non-event
+    unit of a random informative stratum.
+
+    Under the null every assignment of a stratum's events to its units is equally likely, which is
+    the conditional distribution given the stratum totals (a group of m identical rows with y events
+    stands for C(m, y) assignments); the proposal is symmetric and the lists keep their sizes, so
+    the move is accepted with probability min(1, exp(theta_in - theta_out)): always, untilted.
+    A swap of two units of the same group changes nothing and is counted as not changing y.
+    Lists, `T` and the generator are updated in place, so a chain continues exactly.
+    """
+    cdef bitgen_t *bg = _bitgen(bit_generator)
+    cdef int64_t n_rec = out.shape[0]
+    cdef Py_ssize_t q = T.shape[0]
+    cdef int64_t n_inf = informative.shape[0]
+    cdef int64_t h, a, b, gi, gj, rec = 0, countdown = burn + thin
+    cdef int64_t moves = 0, changed = 0
+    cdef int64_t zz
+    cdef Py_ssize_t j
+    cdef double ratio
+    if n_inf == 0:
+        for rec in range(n_rec):
+            for j in range(q):
+                out[rec, j] = T[j]
+        counters[0] += burn + thin * n_rec
+        return
+    with bit_generator.lock, nogil:
+        while rec < n_rec:
+            h = informative[0] if n_inf == 1 else informative[draw_bounded(bg, <uint32_t> n_inf)]
+            a = ev_start[h] + draw_bounded(bg, <uint32_t> ev_count[h])
+            b = non_start[h] + draw_bounded(bg, <uint32_t> non_count[h])
+            moves += 1
+            gi = ev_group[a]
+            gj = non_group[b]
+            if gi != gj:
+                if tilted:
+                    ratio = exp(theta[gj] - theta[gi])
+                    if ratio < 1.0 and draw_uniform(bg) >= ratio:
+                        gj = -1
+                if gj >= 0:
+                    ev_group[a] = <int32_t> gj
+                    non_group[b] = <int32_t> gi
+                    for j in range(q):
+                        zz = non_z[b, j]
+                        T[j] += zz - ev_z[a, j]
+                        non_z[b, j] = ev_z[a, j]
+                        ev_z[a, j] = zz
+                    changed += 1
+            countdown -= 1
+            if countdown == 0:
+                for j in range(q):
+                    out[rec, j] = T[j]
+                rec += 1
+                countdown = thin
+        counters[0] += moves
+        counters[1] += changed

@@ -344,22 +344,51 @@ def default_block_size(n_nuisance: int) -> int:
     return int(min(_sampler.MAX_BLOCK, max(8, 6 + 2 * n_nuisance)))
 
 
-def _mcmc_worker(arrays, y0, n, seed, move, block_size, warmup, thin, state=None, sets=None):
+def _block_worker(arrays, y0, n, seed, block_size, warmup, thin, state=None):
     bg = np.random.PCG64(seed)
     if state is not None:
         bg.state = state
     y = np.array(y0, dtype=np.int64, copy=True)
-    K, H = arrays["m"].shape[0], arrays["start"].shape[0]
-    ready = sets is not None
-    sets = (np.array(sets, dtype=np.int64, copy=True) if ready
-            else np.zeros(4 * K + 2 * H, dtype=np.int64))
     out = np.empty((n, arrays["z"].shape[1]), dtype=np.int64)
     counters = np.zeros(3, dtype=np.int64)
     _sampler.run_chain(bg, y, arrays["m"], arrays["z"], arrays["w"], arrays["stratum"],
                        arrays["start"], arrays["size"], arrays["theta"], arrays["log_fact"],
-                       arrays["fixed"], move, block_size, warmup, thin, out, counters, sets,
-                       ready)
-    return out, counters, y, bg.state, sets
+                       arrays["fixed"], block_size, warmup, thin, out, counters)
+    return out, counters, y, bg.state, None
+
+
+def _units(arrays, y):
+    """Per stratum, the event trials and the non-event trials of response `y`, as lists of
+    (group, interest covariates), laid out stratum after stratum."""
+    m, z, stratum = arrays["m"], arrays["z"], arrays["stratum"]
+    groups = np.arange(m.shape[0])
+    ev = np.repeat(groups, y)                     # groups are in stratum order already
+    non = np.repeat(groups, m - y)
+    H = arrays["start"].shape[0]
+    return {"ev_group": ev.astype(np.int32), "ev_z": np.ascontiguousarray(z[ev]),
+            "non_group": non.astype(np.int32), "non_z": np.ascontiguousarray(z[non]),
+            "T": (y @ z).astype(np.int64),
+            "ev_count": np.bincount(stratum[ev], minlength=H).astype(np.int64),
+            "non_count": np.bincount(stratum[non], minlength=H).astype(np.int64)}
+
+
+def _swap_worker(arrays, y0, n, seed, warmup, thin, state=None, units=None):
+    bg = np.random.PCG64(seed)
+    if state is not None:
+        bg.state = state
+    u = _units(arrays, np.asarray(y0, np.int64)) if units is None else {
+        k: np.array(v, copy=True) for k, v in units.items()}
+    ev_start = np.r_[0, np.cumsum(u["ev_count"])[:-1]].astype(np.int64)
+    non_start = np.r_[0, np.cumsum(u["non_count"])[:-1]].astype(np.int64)
+    informative = np.flatnonzero((u["ev_count"] > 0) & (u["non_count"] > 0)).astype(np.int64)
+    out = np.empty((n, arrays["z"].shape[1]), dtype=np.int64)
+    counters = np.zeros(3, dtype=np.int64)
+    theta = arrays["theta"]
+    _sampler.run_unit_swaps(bg, u["ev_group"], u["ev_z"], u["non_group"], u["non_z"], ev_start,
+                            u["ev_count"], non_start, u["non_count"], informative, theta,
+                            bool(np.any(theta != 0)), u["T"], warmup, thin, out, counters)
+    y = np.bincount(u["ev_group"], minlength=arrays["m"].shape[0]).astype(np.int64)
+    return out, counters, y, bg.state, u
 
 
 def _parallel(options: SamplerOptions):
@@ -423,7 +452,7 @@ def draw_mcmc(design, options: SamplerOptions, seeds, beta=None, continue_from=N
     theta = (np.zeros(K) if beta_arr is None
              else rc.interest @ (beta_arr * rc.step)).astype(float)
     p = rc.nuisance.shape[1]
-    move = _sampler.MOVE_SWAP if (rc.fixed and p == 0) else _sampler.MOVE_BLOCK
+    swap = rc.fixed and p == 0
     block = options.block_size or default_block_size(p)
     stratum_index = np.repeat(np.arange(rc.starts.shape[0]), rc.ends - rc.starts)
     arrays = {
@@ -441,28 +470,33 @@ def draw_mcmc(design, options: SamplerOptions, seeds, beta=None, continue_from=N
     if continue_from is not None:
         starts = [s["y"] for s in continue_from.states]
         states = [s["bit_generator"] for s in continue_from.states]
-        sets = [s.get("swap_sets") for s in continue_from.states]
+        units = [s.get("units") for s in continue_from.states]
         warmup = 0
     else:
         starts = [rc.events] * len(sizes)
         states = [None] * len(sizes)
-        sets = [None] * len(sizes)
+        units = [None] * len(sizes)
         warmup = int(options.n_warmup)
     config, parallel = _parallel(options)
+    thin = int(options.thin)
     with config:
-        results = parallel(
-            delayed(_mcmc_worker)(arrays, y0, n, seed, move, block, warmup, int(options.thin),
-                                  st, ss)
-            for y0, n, seed, st, ss in zip(starts, sizes, seeds, states, sets))
+        if swap:
+            results = parallel(
+                delayed(_swap_worker)(arrays, y0, n, seed, warmup, thin, st, un)
+                for y0, n, seed, st, un in zip(starts, sizes, seeds, states, units))
+        else:
+            results = parallel(
+                delayed(_block_worker)(arrays, y0, n, seed, block, warmup, thin, st)
+                for y0, n, seed, st in zip(starts, sizes, seeds, states))
     chains = [r[0] * rc.step + rc.offset for r in results]
     return Sample("mcmc", chains, np.asarray(design.observed_interest, np.int64),
                   tuple(design.interest_names), np.asarray(design.interest_scales, float),
                   beta=beta_arr, counters=[r[1] for r in results],
-                  states=[{"y": r[2], "bit_generator": r[3], "swap_sets": r[4]}
+                  states=[{"y": r[2], "bit_generator": r[3], "units": r[4]}
                           for r in results],
                   seconds=time.perf_counter() - t0,
-                  info={"move": "swap" if move == _sampler.MOVE_SWAP else "block",
-                        "block_size": None if move == _sampler.MOVE_SWAP else block,
+                  info={"move": "swap" if swap else "block",
+                        "block_size": None if swap else block,
                         "thin": int(options.thin), "n_warmup": warmup, "design_key": key})
 
 
