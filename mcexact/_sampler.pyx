@@ -57,11 +57,75 @@ cdef bitgen_t *_bitgen(object bit_generator) except NULL:
     return <bitgen_t *> PyCapsule_GetPointer(capsule, "BitGenerator")
 
 
+def build_alias(const int64_t[::1] node_arc_ptr, const double[::1] arc_prob):
+    """Walker's alias tables (Vose's construction, Vose 1991) for each node's arcs.
+
+    For a node with k arcs, a uniform u picks slot ``floor(u k)`` and its fractional part decides
+    between the slot's own arc (probability ``alias_prob``) and its alias (``alias_arc``, an arc
+    index): one uniform and no search per stage. Probabilities are renormalised per node.
+
+    Returns
+    -------
+    alias_prob : (n_arcs,) float64
+    alias_arc : (n_arcs,) int64, global arc indices
+    """
+    cdef Py_ssize_t n_nodes = node_arc_ptr.shape[0] - 1
+    cdef Py_ssize_t n_arcs = arc_prob.shape[0]
+    cdef double[::1] aprob = np.empty(n_arcs)
+    cdef int64_t[::1] aarc = np.empty(n_arcs, dtype=np.int64)
+    cdef double[::1] scaled = np.empty(n_arcs)
+    cdef int64_t[::1] small = np.empty(n_arcs, dtype=np.int64)
+    cdef int64_t[::1] large = np.empty(n_arcs, dtype=np.int64)
+    cdef Py_ssize_t i, a, lo, hi, k, ns, nl
+    cdef int64_t s, l
+    cdef double total
+    with nogil:
+        for i in range(n_nodes):
+            lo = node_arc_ptr[i]
+            hi = node_arc_ptr[i + 1]
+            k = hi - lo
+            if k == 0:
+                continue
+            total = 0.0
+            for a in range(lo, hi):
+                total += arc_prob[a]
+            ns = 0
+            nl = 0
+            for a in range(lo, hi):
+                scaled[a] = arc_prob[a] * k / total
+                aarc[a] = a
+                if scaled[a] < 1.0:
+                    small[lo + ns] = a
+                    ns += 1
+                else:
+                    large[lo + nl] = a
+                    nl += 1
+            while ns > 0 and nl > 0:
+                ns -= 1
+                s = small[lo + ns]
+                l = large[lo + nl - 1]
+                aprob[s] = scaled[s]
+                aarc[s] = l
+                scaled[l] = (scaled[l] + scaled[s]) - 1.0
+                if scaled[l] < 1.0:
+                    nl -= 1
+                    small[lo + ns] = l
+                    ns += 1
+            while nl > 0:
+                nl -= 1
+                aprob[large[lo + nl]] = 1.0
+            while ns > 0:                       # rounding leftovers
+                ns -= 1
+                aprob[small[lo + ns]] = 1.0
+    return np.asarray(aprob), np.asarray(aarc)
+
+
 def direct_draws(object bit_generator,
                  const int64_t[::1] node_arc_ptr,
                  const int64_t[::1] arc_succ,
                  const int32_t[::1] arc_y,
-                 const double[::1] arc_cum,
+                 const double[::1] alias_prob,
+                 const int64_t[::1] alias_arc,
                  const int64_t[:, ::1] z,
                  int64_t[:, ::1] out):
     """Fill `out` (n_draws, q) with independent draws of T by walks through the nuisance network.
@@ -72,7 +136,7 @@ def direct_draws(object bit_generator,
     node_arc_ptr : (n_nodes + 1,) arcs of global node i are node_arc_ptr[i]:node_arc_ptr[i + 1]
     arc_succ : (n_arcs,) global index of each arc's successor
     arc_y : (n_arcs,) events the arc puts in its stage's group
-    arc_cum : (n_arcs,) cumulative transition probability within each node (last arc: 1)
+    alias_prob, alias_arc : (n_arcs,) each node's alias table over its arcs (`build_alias`)
     z : (K, q) coded interest covariates per stage
     out : (n_draws, q) int64, written
     """
@@ -80,32 +144,42 @@ def direct_draws(object bit_generator,
     cdef Py_ssize_t n_draws = out.shape[0]
     cdef Py_ssize_t q = z.shape[1]
     cdef Py_ssize_t K = z.shape[0]
-    cdef Py_ssize_t r, k, j
-    cdef int64_t node, a, lo, hi, mid, y
+    cdef Py_ssize_t r0, w, n_w, k, j
+    cdef int64_t a, lo, n_arc, y, slot, pick
     cdef double u
+    # Walks are advanced 16 at a time, stage by stage: each stage of one walk is a chain of
+    # dependent loads (node -> its arcs -> the chosen arc's successor), and interleaving
+    # independent walks lets the processor overlap those loads.
+    cdef int64_t node[16]
     with bit_generator.lock, nogil:
-        for r in range(n_draws):
-            for j in range(q):
-                out[r, j] = 0
-            node = 0
+        for r0 in range(0, n_draws, 16):
+            n_w = 16 if n_draws - r0 > 16 else n_draws - r0
+            for w in range(n_w):
+                node[w] = 0
+                for j in range(q):
+                    out[r0 + w, j] = 0
             for k in range(K):
-                lo = node_arc_ptr[node]
-                hi = node_arc_ptr[node + 1] - 1
-                if lo < hi:
-                    u = draw_uniform(bg)
-                # First arc whose cumulative probability exceeds u (bisection: groups may be large);
-                # a node with a single arc needs no draw.
-                while lo < hi:
-                    mid = (lo + hi) >> 1
-                    if arc_cum[mid] > u:
-                        hi = mid
+                for w in range(n_w):
+                    lo = node_arc_ptr[node[w]]
+                    n_arc = node_arc_ptr[node[w] + 1] - lo
+                    a = lo
+                    if n_arc > 1:
+                        # One uniform: its integer part picks a slot, its fraction the slot's arc
+                        # or the slot's alias (a node with a single arc needs no draw). The
+                        # choice is written without a branch: it is a coin flip for the processor.
+                        u = draw_uniform(bg) * n_arc
+                        slot = <int64_t> u
+                        slot -= slot >= n_arc
+                        a = lo + slot
+                        pick = (u - slot) >= alias_prob[a]
+                        a += pick * (alias_arc[a] - a)
+                    y = arc_y[a]
+                    if q == 1:
+                        out[r0 + w, 0] += y * z[k, 0]
                     else:
-                        lo = mid + 1
-                y = arc_y[lo]
-                if y != 0:
-                    for j in range(q):
-                        out[r, j] += y * z[k, j]
-                node = arc_succ[lo]
+                        for j in range(q):
+                            out[r0 + w, j] += y * z[k, j]
+                    node[w] = arc_succ[a]
 
 
 cdef struct Chain:

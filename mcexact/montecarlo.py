@@ -194,10 +194,10 @@ class Sample:
 # -- direct engine ----------------------------------------------------------------------------
 
 def _flatten(net, arc_logp=None):
-    """Global arrays of the nuisance network for the direct kernel."""
+    """Global arrays of the nuisance network for the direct kernel, with per-node alias tables."""
     K = net.problem.n_stages
     offsets = np.cumsum([0] + list(net.stage_nodes))
-    ptrs, succ, ys, cum = [], [], [], []
+    ptrs, succ, ys, probs = [], [], [], []
     arc_base = 0
     logps = net.arc_logp if arc_logp is None else arc_logp
     for k in range(K):
@@ -205,18 +205,14 @@ def _flatten(net, arc_logp=None):
         ptrs.append(ptr[:-1] + arc_base)
         succ.append(net.arc_succ[k].astype(np.int64) + offsets[k + 1])
         ys.append(net.arc_y[k])
-        p = np.exp(logps[k])
-        c = np.cumsum(p)
-        # Normalise each node's cumulative probabilities to end at exactly 1.
-        owner = np.repeat(np.arange(ptr.shape[0] - 1), np.diff(ptr))
-        before = np.r_[0.0, c][ptr[:-1]]
-        total = np.r_[0.0, c][ptr[1:]] - before
-        cum.append((c - before[owner]) / total[owner])
+        probs.append(np.exp(logps[k]))
         arc_base += ptr[-1]
-    node_ptr = np.concatenate(ptrs + [np.array([arc_base, arc_base])]).astype(np.int64)
     # The final stage's single node has no arcs; its pointer entries close the array.
-    return (node_ptr[:offsets[-1] + 1], np.concatenate(succ), np.concatenate(ys).astype(np.int32),
-            np.concatenate(cum))
+    node_ptr = np.concatenate(ptrs + [np.array([arc_base, arc_base])]).astype(np.int64)
+    node_ptr = node_ptr[:offsets[-1] + 1]
+    alias_prob, alias_arc = _sampler.build_alias(node_ptr, np.concatenate(probs))
+    return (node_ptr, np.concatenate(succ), np.concatenate(ys).astype(np.int32), alias_prob,
+            alias_arc)
 
 
 def _tilted_logp(net, theta_per_stage):
