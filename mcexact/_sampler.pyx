@@ -34,7 +34,7 @@ from libc.stdint cimport int32_t, int64_t, uint32_t, uint64_t
 from libc.stdlib cimport malloc, free
 from numpy.random cimport bitgen_t
 
-from mcexact._random cimport draw_bounded, draw_uniform
+from mcexact._random cimport draw_bounded, draw_two_bounded, draw_uniform
 
 cnp.import_array()
 
@@ -151,6 +151,11 @@ def direct_draws(object bit_generator,
     # dependent loads (node -> its arcs -> the chosen arc's successor), and interleaving
     # independent walks lets the processor overlap those loads.
     cdef int64_t node[16]
+    # Every walk takes exactly K uniforms, drawn walk after walk before the walks advance, so the
+    # stream's use does not depend on how draws are split between calls (continuations are exact).
+    cdef double *uniforms = <double *> malloc(16 * K * sizeof(double)) if K > 0 else NULL
+    if K > 0 and uniforms == NULL:
+        raise MemoryError("mcexact: out of memory for the direct sampler")
     with bit_generator.lock, nogil:
         for r0 in range(0, n_draws, 16):
             n_w = 16 if n_draws - r0 > 16 else n_draws - r0
@@ -158,6 +163,8 @@ def direct_draws(object bit_generator,
                 node[w] = 0
                 for j in range(q):
                     out[r0 + w, j] = 0
+                for k in range(K):
+                    uniforms[w * K + k] = draw_uniform(bg)
             for k in range(K):
                 for w in range(n_w):
                     lo = node_arc_ptr[node[w]]
@@ -165,9 +172,9 @@ def direct_draws(object bit_generator,
                     a = lo
                     if n_arc > 1:
                         # One uniform: its integer part picks a slot, its fraction the slot's arc
-                        # or the slot's alias (a node with a single arc needs no draw). The
-                        # choice is written without a branch: it is a coin flip for the processor.
-                        u = draw_uniform(bg) * n_arc
+                        # or the slot's alias. The choice is written without a branch: it is a
+                        # coin flip for the processor.
+                        u = uniforms[w * K + k] * n_arc
                         slot = <int64_t> u
                         slot -= slot >= n_arc
                         a = lo + slot
@@ -180,6 +187,7 @@ def direct_draws(object bit_generator,
                         for j in range(q):
                             out[r0 + w, j] += y * z[k, j]
                     node[w] = arc_succ[a]
+    free(uniforms)
 
 
 cdef struct Chain:
@@ -516,6 +524,8 @@ def run_unit_swaps(object bit_generator,
     cdef int64_t h, a, b, gi, gj, rec = 0, countdown = burn + thin
     cdef int64_t moves = 0, changed = 0
     cdef int64_t zz
+    cdef int64_t t_one = T[0] if q == 1 else 0
+    cdef uint32_t ua, ub
     cdef Py_ssize_t j
     cdef double ratio
     if n_inf == 0:
@@ -527,8 +537,9 @@ def run_unit_swaps(object bit_generator,
     with bit_generator.lock, nogil:
         while rec < n_rec:
             h = informative[0] if n_inf == 1 else informative[draw_bounded(bg, <uint32_t> n_inf)]
-            a = ev_start[h] + draw_bounded(bg, <uint32_t> ev_count[h])
-            b = non_start[h] + draw_bounded(bg, <uint32_t> non_count[h])
+            draw_two_bounded(bg, <uint32_t> ev_count[h], <uint32_t> non_count[h], &ua, &ub)
+            a = ev_start[h] + ua
+            b = non_start[h] + ub
             moves += 1
             gi = ev_group[a]
             gj = non_group[b]
@@ -540,17 +551,28 @@ def run_unit_swaps(object bit_generator,
                 if gj >= 0:
                     ev_group[a] = <int32_t> gj
                     non_group[b] = <int32_t> gi
-                    for j in range(q):
-                        zz = non_z[b, j]
-                        T[j] += zz - ev_z[a, j]
-                        non_z[b, j] = ev_z[a, j]
-                        ev_z[a, j] = zz
+                    if q == 1:
+                        zz = non_z[b, 0]
+                        t_one += zz - ev_z[a, 0]
+                        non_z[b, 0] = ev_z[a, 0]
+                        ev_z[a, 0] = zz
+                    else:
+                        for j in range(q):
+                            zz = non_z[b, j]
+                            T[j] += zz - ev_z[a, j]
+                            non_z[b, j] = ev_z[a, j]
+                            ev_z[a, j] = zz
                     changed += 1
             countdown -= 1
             if countdown == 0:
-                for j in range(q):
-                    out[rec, j] = T[j]
+                if q == 1:
+                    out[rec, 0] = t_one
+                else:
+                    for j in range(q):
+                        out[rec, j] = T[j]
                 rec += 1
                 countdown = thin
+        if q == 1:
+            T[0] = t_one
         counters[0] += moves
         counters[1] += changed
