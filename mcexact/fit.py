@@ -12,6 +12,7 @@ import json
 import math
 import sys
 import time
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -44,11 +45,13 @@ CAUTION = (
     "statistician and applicable regulatory guidance.")
 
 _TEST_COLUMNS = ["effect", "test", "statistic", "p_value", "mid_p_value", "df", "n_points",
-                 "engine", "mcse", "mcse_mid_p", "n_draws", "note"]
+                 "engine", "mcse", "mcse_mid_p", "n_draws", "ess", "rhat", "verdict",
+                 "draws_needed", "note"]
 _ESTIMATE_COLUMNS = ["term", "effect", "estimate", "kind", "ci_lower", "ci_upper", "odds_ratio",
                      "or_ci_lower", "or_ci_upper", "p_value", "mid_p_value", "p_lower", "p_upper",
                      "cmle", "median_unbiased", "observed", "n_points", "engine", "mcse",
-                     "mcse_ci_lower", "mcse_ci_upper", "mcse_p_value", "n_draws", "note"]
+                     "mcse_ci_lower", "mcse_ci_upper", "mcse_p_value", "n_draws", "ess", "rhat",
+                     "verdict", "draws_needed", "note"]
 
 
 @dataclass
@@ -328,8 +331,12 @@ def _unsure_points(result, batch_diffs: list, dist: ConditionalDistribution) -> 
     if len(batch_diffs) < 2 or result.values is None:
         return unsure
     diffs = np.asarray(batch_diffs, float)
+    # Spread by the scaled median absolute deviation (1.4826 MAD estimates a normal sd): a batch in
+    # which the observed value was barely drawn gives a wild statistic, which must not make every
+    # point look unsure.
     with np.errstate(invalid="ignore"):
-        se = np.nanstd(diffs, axis=0, ddof=1) / np.sqrt(diffs.shape[0])
+        centre = np.nanmedian(diffs, axis=0)
+        se = 1.4826 * np.nanmedian(np.abs(diffs - centre), axis=0) / np.sqrt(diffs.shape[0])
     full = result.values - result.observed_value
     with np.errstate(invalid="ignore"):
         unsure = np.abs(full) < _UNSURE_Z * se
@@ -370,12 +377,75 @@ def _batch_mcse(values: list) -> float:
 # tests/test_montecarlo.py, not a published threshold).
 _PROBABILITY_DRAWS = 20
 
+# Common-practice convergence thresholds (Vehtari et al. 2021 recommend R-hat below 1.01 and at
+# least 400 effective draws before trusting summaries; our reading of that paper, from memory).
+_RHAT_LIMIT = 1.01
+_ESS_MIN = 400
+# Chains whose estimates disagree beyond this p-value are flagged (chain_agreement).
+_AGREEMENT_P = 0.001
+
+
+def _convergence(dist: ConditionalDistribution, values: np.ndarray, p: float, mcse: float,
+                 alpha: float, target_mcse: float | None) -> dict:
+    """ESS, R-hat and chain agreement of a Monte Carlo p-value's indicator, and a verdict.
+
+    The verdict is "quotable" when the Monte Carlo error meets `target_mcse` (or, without a
+    target, when p +/- 2.576 MCSE lies on one side of `alpha`, so the conclusion at that level is
+    settled), and, for Markov chains, R-hat <= 1.01, ESS >= 400 and the chains agree.
+    ``draws_needed`` estimates the draws in all that would reach the precision.
+    """
+    from mcexact.diagnostics import chain_agreement, draws_needed, ess, rhat
+
+    out = {"ess": np.nan, "rhat": np.nan, "verdict": "", "draws_needed": np.nan}
+    if not dist.is_monte_carlo or not np.isfinite(mcse):
+        out["verdict"] = "" if not dist.is_monte_carlo else "no Monte Carlo error: not quotable"
+        return out
+    series = [np.asarray(values, float)[idx] for idx in dist.chain_index]
+    n_min = min(s.shape[0] for s in series)
+    chains = np.stack([s[:n_min] for s in series])
+    N = dist.n_draws
+    problems = []
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        if dist.iid:
+            out["ess"] = float(N)
+        else:
+            e = ess(chains, method="mean") if np.ptp(chains) > 0 else float(N)
+            out["ess"] = float(e) if np.isfinite(e) else np.nan
+            r = rhat(chains) if np.ptp(chains) > 0 else 1.0
+            out["rhat"] = float(r)
+            if not np.isfinite(r) or r > _RHAT_LIMIT:
+                problems.append(f"R-hat {r:.3f} > {_RHAT_LIMIT}")
+            if not np.isfinite(out["ess"]) or out["ess"] < _ESS_MIN:
+                problems.append(f"ESS {out['ess']:.0f} < {_ESS_MIN}")
+            if chains.shape[0] >= 2 and np.ptp(chains) > 0:
+                agree = chain_agreement(chains)
+                if np.isfinite(agree.pvalue) and agree.pvalue < _AGREEMENT_P:
+                    problems.append(f"chains disagree (p = {agree.pvalue:.2g})")
+    goal = target_mcse if target_mcse is not None else abs(p - alpha) / 2.576
+    if goal > 0 and np.isfinite(out["ess"]) and out["ess"] > 0:
+        # Scale by the observed error rather than p(1 - p): the error may include more than the
+        # binomial part (batches, plug-in bias, unsure points).
+        out["draws_needed"] = float(np.ceil(N * (mcse / goal) ** 2))
+    precise = mcse <= goal
+    if problems:
+        out["verdict"] = "not converged: " + "; ".join(problems)
+    elif precise:
+        out["verdict"] = "quotable"
+    else:
+        what = (f"Monte Carlo error {mcse:.2g} above the target {target_mcse:g}"
+                if target_mcse is not None else f"p +/- 2.576 MCSE straddles alpha = {alpha:g}")
+        out["verdict"] = f"more draws needed ({what})"
+    return out
+
+
 # Supports up to this size also get the likelihood-ratio test re-evaluated on every batch of draws
 # for its Monte Carlo error; beyond, that test's error counts the indicator's variability only.
 _BATCH_LR_POINTS = 2000
 
 
-def _test_rows(effect: str, dist: ConditionalDistribution, engine: str) -> list:
+def _test_rows(effect: str, dist: ConditionalDistribution, engine: str,
+               convergence: tuple | None = None) -> list:
     """Rows of the tests frame. A Monte Carlo p-value's error is the larger of two estimates: that
     of the mean of the "at least as extreme" indicator over the draws (binomial, or batch means
     for chains), and that of the p-value re-evaluated on batches of the draws, which also counts
@@ -432,6 +502,10 @@ def _test_rows(effect: str, dist: ConditionalDistribution, engine: str) -> list:
             row["mcse_mid_p"] = float(np.hypot(_test_mcse(mcse_of_indicator(dist, mid_values),
                                                           batch_mid[t.test], row["mid_p_value"]),
                                                half_unsure))
+            if convergence is not None:
+                row.update(_convergence(dist, values, row["p_value"], row["mcse"], *convergence))
+        if dist.is_monte_carlo and convergence is not None and not row.get("verdict"):
+            row["verdict"] = "no Monte Carlo error: not quotable"
         rows.append(row)
     return rows
 
@@ -486,7 +560,8 @@ def _refine_by_tilting(piece, e, k, others, tilter, alpha, n_draws):
 
 
 def _estimate_row(term, effect, piece: ConditionalDistribution, scale: float, alpha: float,
-                  engine: str, tilter=None, k: int = 0, others=(), n_draws: int = 0) -> dict:
+                  engine: str, tilter=None, k: int = 0, others=(), n_draws: int = 0,
+                  convergence: tuple | None = None) -> dict:
     e = column_inference(piece, alpha)
     s = scale
     row = {
@@ -505,6 +580,10 @@ def _estimate_row(term, effect, piece: ConditionalDistribution, scale: float, al
         le, ge = (col <= t).astype(float), (col >= t).astype(float)
         smaller = le if e.p_lower <= e.p_upper else ge
         row["mcse_p_value"] = min(1.0, 2 * mcse_of_indicator(piece, smaller))
+        if convergence is not None:
+            conv = _convergence(piece, smaller, min(e.p_lower, e.p_upper),
+                                row["mcse_p_value"] / 2, convergence[0] / 2, convergence[1])
+            row.update(conv)
         if e.kind == "cmle":
             row["mcse"] = s * _root_mcse(piece, e.estimate, col, t)
         elif e.kind == "median_unbiased":
@@ -670,13 +749,13 @@ def fit(data, formula: str | None = None, *, interest=None, strata: str | None =
                                           f"effect {effect!r}", precision)
         parts[effect] = info
         effect_dists[effect] = dist
-        test_rows += _test_rows(effect, dist, info["engine"])
+        test_rows += _test_rows(effect, dist, info["engine"], (alpha, target_mcse))
         for k, c in enumerate(cols):
             others = [j for j in range(len(cols)) if j != k]
             piece = dist.condition(others) if others else dist
             estimate_rows.append(_estimate_row(names[c], effect, piece, scales[c], alpha,
                                                info["engine"], tilter if tilted else None, k,
-                                               others, n_draws))
+                                               others, n_draws, (alpha, target_mcse)))
 
     # Joint distribution of all interest columns.
     joint_estimate = None
@@ -692,7 +771,7 @@ def fit(data, formula: str | None = None, *, interest=None, strata: str | None =
             joint = None
             notes.append(f"the joint test was not computed: {exc}")
     if joint is not None:
-        test_rows += _test_rows("joint", joint, parts["joint"]["engine"])
+        test_rows += _test_rows("joint", joint, parts["joint"]["engine"], (alpha, target_mcse))
         b = joint_cmle(joint)
         if b is None:
             notes.append("the joint conditional MLE does not exist: the observed statistics lie "

@@ -19,6 +19,7 @@ whatever ``n_jobs`` or the backend.
 from __future__ import annotations
 
 import time
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -532,7 +533,19 @@ def mcse_of_indicator(dist: ConditionalDistribution, values: np.ndarray) -> floa
     means = np.concatenate(batch_means)
     b = float(np.mean(b_sizes))
     sigma2 = b * np.sum((means - grand) ** 2) / (means.shape[0] - 1)
-    return float(np.sqrt(max(sigma2, floor) / N))
+    batch = float(np.sqrt(max(sigma2, floor) / N))
+    # Batches of sqrt(n) draws are too short when the autocorrelation is long; the error from
+    # the initial-sequence effective sample size (Geyer 1992) adapts to it. Report the larger.
+    from mcexact.diagnostics import mcse_mean
+
+    n_min = min(s.shape[0] for s in series)
+    if n_min >= 4 and np.ptp(allv) > 0:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            geyer = mcse_mean(np.stack([s[:n_min] for s in series]), method="ess")
+        if np.isfinite(geyer):
+            batch = max(batch, float(geyer))
+    return batch
 
 
 
