@@ -533,30 +533,73 @@ def _refine_by_tilting(piece, e, k, others, tilter, alpha, n_draws):
     t = int(piece.observed[0])
     le, ge = (col <= t).astype(float), (col >= t).astype(float)
     out, refined = {}, []
-    wanted = [("ci_lower", e.ci_lower, "ge", alpha / 2), ("ci_upper", e.ci_upper, "le", alpha / 2)]
+    wanted = []
     if e.kind == "cmle":
         wanted.append(("estimate", e.estimate, "mean", None))
     elif e.kind == "median_unbiased":
         wanted.append(("estimate", e.estimate, "ge" if e.at_edge == "upper" else "le", 0.5))
+    wanted += [("ci_lower", e.ci_lower, "ge", alpha / 2), ("ci_upper", e.ci_upper, "le", alpha / 2)]
+    anchor = e.estimate if np.isfinite(e.estimate) else 0.0
     for name, b, which, target in wanted:
         if not np.isfinite(b) or _weights_ess(piece, b) >= _TILT_ESS_SHARE * piece.n_draws:
             continue
-        beta = np.zeros(len(others) + 1)
-        beta[k] = b
-        tilted = tilter(beta)
-        tp = tilted.condition(others) if others else tilted
-        te = column_inference(tp, alpha)
-        tcol = tp.support[:, 0].astype(float)
-        if name == "estimate" and te.kind != e.kind:
-            continue
-        value = {"ci_lower": te.ci_lower, "ci_upper": te.ci_upper, "estimate": te.estimate}[name]
-        h = {"ge": (tcol >= t).astype(float), "le": (tcol <= t).astype(float), "mean": tcol}[which]
         goal = t if which == "mean" else target
-        out[name] = (value, _root_mcse(tp, value, h, goal))
-        refined.append(name)
+        b_try = b
+        # A value estimated from thin null draws can be far off, and a tilt too far from the
+        # root brackets nothing: move the tilt halfway towards the (refined) estimate and retry.
+        for _ in range(3):
+            beta = np.zeros(len(others) + 1)
+            beta[k] = b_try
+            tilted = tilter(beta)
+            tp = tilted.condition(others) if others else tilted
+            tcol = tp.support[:, 0].astype(float)
+            h = {"ge": (tcol >= t).astype(float), "le": (tcol <= t).astype(float),
+                 "mean": tcol}[which]
+            value = _local_root(tp, b_try, h, goal)
+            if np.isfinite(value):
+                out[name] = (value, _root_mcse(tp, value, h, goal))
+                refined.append(name)
+                if name == "estimate":
+                    anchor = value
+                break
+            b_try = 0.5 * (b_try + anchor)
     note = ("refined by sampling the distribution tilted to it: " + ", ".join(refined)
             if refined else "")
     return out, note
+
+
+def _local_root(piece: ConditionalDistribution, b0: float, h: np.ndarray, target: float) -> float:
+    """The b near `b0` with ``E_b[h(T)] = target``, from draws of the distribution tilted to b0.
+
+    The draws' own frequencies f(t) estimate the b0-tilted distribution, so ``E_b`` weights them by
+    ``exp((b - b0) t)``; working in units of the draws' spread keeps the search local (the null
+    weights, ``f exp(-b0 t)``, would put all the mass on the few draws in the null bulk). E_b[h] is
+    monotone in b for the tails and the mean, so a bracket and Brent's method find the root.
+    Returns NaN if no root is bracketed within 50 spreads.
+    """
+    from scipy.optimize import brentq
+
+    counts = np.bincount(np.concatenate(piece.chain_index), minlength=piece.n_points)
+    keep = counts > 0
+    col = piece.support[keep, 0].astype(float)
+    f = counts[keep] / counts.sum()
+    hk = h[keep]
+    mu = f @ col
+    sd = float(np.sqrt(max(f @ (col - mu) ** 2, 0.0))) or 1.0
+    u = (col - mu) / sd
+
+    def g(d):
+        lw = np.log(f) + d * u
+        p = np.exp(lw - logsumexp(lw))
+        return float(p @ hk) - target
+
+    lo, hi = -1.0, 1.0
+    while np.sign(g(lo)) == np.sign(g(hi)):
+        lo, hi = 2 * lo, 2 * hi
+        if hi > 50:
+            return np.nan
+    d = brentq(g, lo, hi, xtol=1e-12, rtol=1e-12)
+    return float(b0 + d / sd)
 
 
 def _estimate_row(term, effect, piece: ConditionalDistribution, scale: float, alpha: float,
