@@ -102,6 +102,22 @@ def _greedy_extremes(values: np.ndarray, trials: np.ndarray, events: int) -> tup
     return int(low_take @ v), int(high_take @ v_desc)
 
 
+def _mixed_radix(radices, first: int, what: str) -> list[int]:
+    """Strides packing values with these ranges into one int64 key after a leading factor
+    `first`; BudgetExceeded if the key space would reach KEY_LIMIT."""
+    strides, size = [], int(first)
+    for r in (int(x) for x in radices):
+        strides.append(size)
+        size *= r
+    if size >= KEY_LIMIT:
+        raise BudgetExceeded(
+            f"mcexact: the {what} statistics span too wide a range for exact enumeration "
+            f"(about {float(size):.3g} possible partial sums); use a Monte Carlo method or "
+            f"coarsen the {what} covariates", what="key_space", reached=min(size, 2**63 - 1),
+            limit=KEY_LIMIT)
+    return strides
+
+
 def _column_gcd(col: np.ndarray) -> int:
     g = 0
     for value in np.unique(np.abs(col)):
@@ -271,28 +287,9 @@ def compile_design(design, order: np.ndarray | None = None) -> StageProblem:
         u_hi = np.maximum(W * trials[:, None], 0).sum(axis=0)
         v_lo = np.minimum(Z * trials[:, None], 0).sum(axis=0)
         v_hi = np.maximum(Z * trials[:, None], 0).sum(axis=0)
-    u_radix = [int(x) for x in (u_hi - u_lo + 1)]
-    u_stride, size = [], c_radix
-    for r in u_radix:
-        u_stride.append(size)
-        size *= r
-    if size >= KEY_LIMIT:
-        raise BudgetExceeded(
-            "mcexact: the nuisance statistics span too wide a range for exact enumeration "
-            f"(about {float(size):.3g} possible partial sums); use a Monte Carlo method or "
-            "coarsen the nuisance covariates", what="key_space", reached=min(size, 2**63 - 1),
-            limit=KEY_LIMIT)
+    u_stride = _mixed_radix(u_hi - u_lo + 1, c_radix, "nuisance")
     v_radix = [int(x) for x in (v_hi - v_lo + 1)]
-    v_stride, vsize = [], 1
-    for r in v_radix:
-        v_stride.append(vsize)
-        vsize *= r
-    if vsize >= KEY_LIMIT:
-        raise BudgetExceeded(
-            "mcexact: the interest statistics span too wide a range for exact enumeration "
-            f"(about {float(vsize):.3g} possible values); use a Monte Carlo method or coarsen "
-            "the interest covariates", what="key_space", reached=min(vsize, 2**63 - 1),
-            limit=KEY_LIMIT)
+    v_stride = _mixed_radix(v_hi - v_lo + 1, 1, "interest")
 
     log_fact = gammaln(np.arange(int(trials.max(initial=0)) + 2) + 1.0)
     log_binom = []

@@ -25,6 +25,7 @@ import pandas as pd
 from scipy.special import logsumexp
 
 from mcexact._exceptions import DataError, FileFormatError
+from mcexact._json import plain
 
 __all__ = ["ConditionalDistribution"]
 
@@ -255,7 +256,7 @@ class ConditionalDistribution:
         """Write the distribution to `path` (``.npz``; format in the module docstring), atomically."""
         path = os.fspath(path)
         header = json.dumps({"format": FILE_FORMAT, "version": FILE_VERSION,
-                             "names": list(self.names), "info": _jsonable(self.info)})
+                             "names": list(self.names), "info": plain(self.info)})
         folder = os.path.dirname(os.path.abspath(path))
         fd, tmp = tempfile.mkstemp(prefix=".mcexact-", suffix=".npz.tmp", dir=folder)
         try:
@@ -303,16 +304,3 @@ class ConditionalDistribution:
             return cls(names=tuple(header["names"]), info=header.get("info", {}), **arrays)
         except (DataError, KeyError, TypeError, ValueError) as exc:
             raise FileFormatError(f"{name} is damaged: {exc}") from exc
-
-
-def _jsonable(obj):
-    """Convert numpy scalars and arrays inside `obj` into plain Python for JSON."""
-    if isinstance(obj, dict):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_jsonable(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return obj.tolist()
-    if isinstance(obj, np.generic):
-        return obj.item()
-    return obj

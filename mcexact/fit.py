@@ -20,6 +20,7 @@ import pandas as pd
 from scipy.special import logsumexp
 
 from mcexact._exceptions import BudgetExceeded, DataError
+from mcexact._json import plain
 from mcexact.asymptotic import AsymptoticComparison, asymptotic_fit
 from mcexact.design import Design
 from mcexact.distribution import ConditionalDistribution
@@ -124,37 +125,19 @@ class FitResult:
             "tests": _records(self.tests),
             "estimates": _records(self.estimates),
             "joint_estimate": (None if self.joint_estimate is None
-                               else {k: _plain(v) for k, v in self.joint_estimate.items()}),
-            "asymptotic": None if self.asymptotic is None else _plain(self.asymptotic.to_dict()),
+                               else {k: plain(v) for k, v in self.joint_estimate.items()}),
+            "asymptotic": None if self.asymptotic is None else plain(self.asymptotic.to_dict()),
             "notes": list(self.notes),
             "caution": CAUTION,
         }
-        return _plain(out)
+        return plain(out)
 
     def to_json(self, **kwargs) -> str:
         return json.dumps(self.to_dict(), **kwargs)
 
 
-def _plain(value):
-    """Numpy scalars to Python, non-finite floats to strings, recursively."""
-    if isinstance(value, dict):
-        return {str(k): _plain(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_plain(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return [_plain(v) for v in value.tolist()]
-    if isinstance(value, np.generic):
-        value = value.item()
-    if isinstance(value, float):
-        if math.isnan(value):
-            return None
-        if math.isinf(value):
-            return "inf" if value > 0 else "-inf"
-    return value
-
-
 def _records(frame: pd.DataFrame) -> list:
-    return [_plain(r) for r in frame.to_dict(orient="records")]
+    return [plain(r) for r in frame.to_dict(orient="records")]
 
 
 def _check_options(method, alpha):
@@ -851,7 +834,7 @@ def fit(data, formula: str | None = None, *, interest=None, strata: str | None =
 def _rng_record(root) -> dict:
     """How to reproduce the run's random numbers."""
     if isinstance(root, np.random.SeedSequence):
-        return {"kind": "SeedSequence", "entropy": _plain(root.entropy),
+        return {"kind": "SeedSequence", "entropy": plain(root.entropy),
                 "spawn_key": list(root.spawn_key)}
     if isinstance(root, (int, np.integer)):
         return {"kind": "int", "seed": int(root)}

@@ -509,6 +509,8 @@ def mcse_of_indicator(dist: ConditionalDistribution, values: np.ndarray) -> floa
     """
     if dist.chain_index is None:
         return 0.0
+    from mcexact.diagnostics import mcse_mean
+
     series = [np.asarray(values, float)[idx] for idx in dist.chain_index]
     allv = np.concatenate(series)
     N = allv.shape[0]
@@ -518,34 +520,20 @@ def mcse_of_indicator(dist: ConditionalDistribution, values: np.ndarray) -> floa
     floor = (1.0 / (N + 2)) * (1.0 - 1.0 / (N + 2))
     if dist.iid:
         return float(np.sqrt(max(allv.var(ddof=1), floor) / N))
-    grand = allv.mean()
-    batch_means, b_sizes = [], []
-    for s in series:
-        n = s.shape[0]
-        b = max(1, int(np.sqrt(n)))
-        a = n // b
-        if a < 2:
-            continue
-        batch_means.append(s[:a * b].reshape(a, b).mean(axis=1))
-        b_sizes.append(b)
-    if not batch_means:
-        return np.nan
-    means = np.concatenate(batch_means)
-    b = float(np.mean(b_sizes))
-    sigma2 = b * np.sum((means - grand) ** 2) / (means.shape[0] - 1)
-    batch = float(np.sqrt(max(sigma2, floor) / N))
-    # Batches of sqrt(n) draws are too short when the autocorrelation is long; the error from
-    # the initial-sequence effective sample size (Geyer 1992) adapts to it. Report the larger.
-    from mcexact.diagnostics import mcse_mean
-
+    # Chains differ in length by at most one draw (n_draws is shared out evenly): cut to the
+    # shortest. Batches of sqrt(n) draws are too short when the autocorrelation is long; the error
+    # from the initial-sequence effective sample size (Geyer 1992) adapts to it: report the larger.
     n_min = min(s.shape[0] for s in series)
-    if n_min >= 4 and np.ptp(allv) > 0:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)
-            geyer = mcse_mean(np.stack([s[:n_min] for s in series]), method="ess")
-        if np.isfinite(geyer):
-            batch = max(batch, float(geyer))
-    return batch
+    if n_min < 4:
+        return np.nan
+    chains = np.stack([s[:n_min] for s in series])
+    if np.ptp(chains) == 0:
+        return float(np.sqrt(floor / N))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        errors = [mcse_mean(chains, method="batch"), mcse_mean(chains, method="ess")]
+    errors = [e for e in errors if np.isfinite(e)]
+    return float(max(errors + [np.sqrt(floor / N)]))
 
 
 

@@ -217,45 +217,29 @@ def _binomial_mcse(p: np.ndarray, n: np.ndarray) -> np.ndarray:
     return np.sqrt(np.maximum(p * (1.0 - p), floor) / n)
 
 
-def _batch_means_mcse(cumsums: list[np.ndarray], used: np.ndarray,
-                      grand: np.ndarray) -> np.ndarray:
-    """Batch-means MCSE of the pooled mean of the first ``used[k, c]`` draws of each chain c.
+def _prefix_mcse(dist: ConditionalDistribution, values: np.ndarray,
+                 used: np.ndarray) -> np.ndarray:
+    """Monte Carlo error of the pooled mean over the first ``used[k, c]`` draws of each chain c:
+    :func:`mcexact.montecarlo.mcse_of_indicator` applied to every prefix, so the band's last point
+    is the error the results report. Evaluated on at most 60 prefixes (log-spaced) and
+    interpolated between them; NaN where a prefix is too short."""
+    from types import SimpleNamespace
 
-    The estimator of :func:`mcexact.montecarlo.mcse_of_indicator` (Flegal & Jones 2010) applied to
-    each prefix: in every chain, batches of ``b = floor(sqrt(n_c))`` consecutive draws; the batch
-    means of all chains pooled around the prefix's grand mean, ``sigma^2 = b_bar * sum (m -
-    grand)^2 / (n_batches - 1)``, ``mcse = sqrt(max(sigma^2, floor) / n)`` with the floor of
-    :func:`_binomial_mcse`. NaN where no chain has two batches yet.
+    from mcexact.montecarlo import mcse_of_indicator
 
-    Parameters
-    ----------
-    cumsums : list of ndarray
-        Per chain, ``r_[0, cumsum(indicator)]``.
-    used : ndarray, shape (n_points, n_chains)
-        Draws of each chain in each prefix.
-    grand : ndarray, shape (n_points,)
-        Mean indicator of each prefix.
-    """
-    out = np.full(used.shape[0], np.nan)
-    for k in range(used.shape[0]):
-        squares, n_batches, sizes = 0.0, 0, []
-        for c, cs in enumerate(cumsums):
-            n = int(used[k, c])
-            b = max(1, int(np.sqrt(n)))
-            a = n // b
-            if a < 2:
-                continue
-            edges = cs[np.arange(a + 1) * b]
-            means = np.diff(edges) / b
-            squares += float(np.sum((means - grand[k]) ** 2))
-            n_batches += a
-            sizes.append(b)
-        if n_batches < 2:
-            continue
-        n_total = float(used[k].sum())
-        sigma2 = float(np.mean(sizes)) * squares / (n_batches - 1)
-        floor = (1.0 / (n_total + 2)) * (1.0 - 1.0 / (n_total + 2))
-        out[k] = np.sqrt(max(sigma2, floor) / n_total)
+    n_points = used.shape[0]
+    picks = np.unique(np.r_[np.geomspace(1, n_points, 60).astype(int) - 1, n_points - 1])
+    at = np.full(picks.shape[0], np.nan)
+    for i, k in enumerate(picks):
+        prefix = SimpleNamespace(chain_index=tuple(idx[:int(used[k, c])] for c, idx in
+                                                   enumerate(dist.chain_index)), iid=False)
+        if min(int(x) for x in used[k]) >= 4:
+            at[i] = mcse_of_indicator(prefix, values)
+    ok = np.isfinite(at)
+    out = np.full(n_points, np.nan)
+    if ok.any():
+        first = picks[ok][0]
+        out[first:] = np.interp(np.arange(first, n_points), picks[ok], at[ok])
     return out
 
 
@@ -290,7 +274,8 @@ def plot_running_pvalue(dist: ConditionalDistribution, more, tie, *, exact: floa
 
     - independent draws (``dist.iid``): binomial, ``sqrt(p (1 - p) / n)`` with p the running
       estimate, the variance floored at ``(1/(n+2)) (1 - 1/(n+2))`` so the band stays open at 0;
-    - Markov chains: batch means (Flegal & Jones 2010) on the prefix of every chain, batches of
+    - Markov chains: the error of :func:`mcexact.montecarlo.mcse_of_indicator` (batch means,
+      Flegal & Jones 2010, or Geyer's effective sample size, the larger) on each prefix; batches of
       ``floor(sqrt(n_c))`` draws pooled over the chains around the prefix's mean, with the same
       floor: the estimator of :func:`mcexact.montecarlo.mcse_of_indicator`, so the band's last
       point is two of the MCSEs that function gives for all the draws. The band is absent (NaN)
@@ -353,9 +338,8 @@ def plot_running_pvalue(dist: ConditionalDistribution, more, tie, *, exact: floa
     else:
         used = np.stack([np.cumsum(chain_of == c)[points - 1] for c in range(len(series))],
                         axis=1)
-        cumsums = [np.r_[0.0, np.cumsum(s)] for s in series]
-        mcse = _batch_means_mcse(cumsums, used, running)
-        band_label = "±2 MCSE (batch means per chain)"
+        mcse = _prefix_mcse(dist, values, used)
+        band_label = "±2 MCSE (batch means / effective sample size, per chain)"
 
     what = "mid-p-value" if mid_p else "p-value"
     fig = _new_figure((8.0, 4.5))

@@ -11,11 +11,14 @@ package's invented demo.
 
 from __future__ import annotations
 
+import os
 import subprocess
 import sys
 import types
 
 import numpy as np
+
+import mcexact
 import pytest
 
 matplotlib = pytest.importorskip("matplotlib")
@@ -107,7 +110,7 @@ def bar_centres(c: BarContainer) -> np.ndarray:
 
 # -- matplotlib is optional -----------------------------------------------------------------------
 
-def test_package_imports_and_plots_fail_cleanly_without_matplotlib():
+def test_package_imports_and_plots_fail_cleanly_without_matplotlib(tmp_path):
     # Blocking the import (None in sys.modules) stands in for an environment without matplotlib.
     code = (
         "import sys; sys.modules['matplotlib'] = None\n"
@@ -119,8 +122,12 @@ def test_package_imports_and_plots_fail_cleanly_without_matplotlib():
         "except mcexact.DataError as exc:\n"
         "    print('DataError:', exc)\n"
     )
+    # Run outside the source tree: `python -c` puts the working folder first on sys.path, and
+    # the repository root holds the package's source without its compiled kernels.
+    # The child imports the same mcexact as this test run (installed, or built in place).
+    env = {**os.environ, "PYTHONPATH": os.path.dirname(os.path.dirname(mcexact.__file__))}
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
-                         timeout=120)
+                         timeout=120, cwd=tmp_path, env=env)
     assert out.returncode == 0, out.stderr
     assert "DataError:" in out.stdout and "matplotlib" in out.stdout
 
