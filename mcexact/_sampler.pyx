@@ -191,21 +191,20 @@ def direct_draws(object bit_generator,
 
 
 cdef struct Chain:
-    # Problem
+    # Problem and state. A group's fields sit together in one record of `stride` int64
+    # [trials, events, stratum, nuisance..., interest...], so a move touching a random group reads
+    # one or two cache lines however many groups there are.
     int64_t K
     int64_t p
     int64_t q
-    const int64_t *m
-    const int64_t *z          # K x q
-    const int64_t *w          # K x p
-    const int64_t *stratum    # K
+    int64_t stride
+    int64_t *rec              # K x stride
     const int64_t *start      # H: first group of each stratum
     const int64_t *size       # H: groups in each stratum
     const double *theta       # K: tilt per unit event in each group
+    bint tilted
     const double *log_fact    # log k! for k = 0..max m
     bint fixed
-    # State
-    int64_t *y
     int64_t *T
     # Block scratch
     int64_t r
@@ -231,9 +230,10 @@ cdef inline double log_binom(const Chain *c, int64_t m, int64_t y) noexcept nogi
 cdef inline void change_y(Chain *c, int64_t g, int64_t delta) noexcept nogil:
     """Add `delta` events to group g, keeping T in step."""
     cdef Py_ssize_t j
-    c.y[g] += delta
+    cdef int64_t *r = c.rec + g * c.stride
+    r[1] += delta
     for j in range(c.q):
-        c.T[j] += delta * c.z[g * c.q + j]
+        c.T[j] += delta * r[3 + c.p + j]
 
 
 cdef void enumerate_block(Chain *c, int64_t k, double lw) noexcept nogil:
@@ -260,7 +260,7 @@ cdef void enumerate_block(Chain *c, int64_t k, double lw) noexcept nogil:
         c.n_fiber += 1
         return
     g = c.block[k]
-    lim = c.m[g]
+    lim = c.rec[g * c.stride]
     for x in range(lim + 1):
         ok = True
         for j in range(c.n_cons):
@@ -273,7 +273,8 @@ cdef void enumerate_block(Chain *c, int64_t k, double lw) noexcept nogil:
         for j in range(c.n_cons):
             part[j] += x * c.cons[k * c.n_cons + j]
         c.x[k] = x
-        enumerate_block(c, k + 1, lw + log_binom(c, lim, x) + x * c.theta[g])
+        enumerate_block(c, k + 1, lw + log_binom(c, lim, x)
+                        + (x * c.theta[g] if c.tilted else 0.0))
         for j in range(c.n_cons):
             part[j] -= x * c.cons[k * c.n_cons + j]
         if c.overflow:
@@ -299,7 +300,7 @@ cdef int block_move(Chain *c, bitgen_t *bg, int64_t r) noexcept nogil:
     cdef bint within = draw_bounded(bg, 2) == 0
     if within:
         # A random group's stratum (so strata are chosen in proportion to their size).
-        h = c.stratum[draw_bounded(bg, <uint32_t> c.K)]
+        h = c.rec[draw_bounded(bg, <uint32_t> c.K) * c.stride + 2]
         first, count = c.start[h], c.size[h]
     else:
         first, count = 0, c.K
@@ -321,7 +322,7 @@ cdef int block_move(Chain *c, bitgen_t *bg, int64_t r) noexcept nogil:
     # Constraints: nuisance columns, then one count per stratum present (when strata are fixed).
     if c.fixed:
         for i in range(n):
-            h = c.stratum[c.block[i]]
+            h = c.rec[c.block[i] * c.stride + 2]
             s = -1
             for j in range(n_strata_in):
                 if strata_in[j] == h:
@@ -333,20 +334,20 @@ cdef int block_move(Chain *c, bitgen_t *bg, int64_t r) noexcept nogil:
     for i in range(n):
         g = c.block[i]
         for j in range(c.p):
-            c.cons[i * c.n_cons + j] = c.w[g * c.p + j]
+            c.cons[i * c.n_cons + j] = c.rec[g * c.stride + 3 + j]
         for j in range(n_strata_in):
-            c.cons[i * c.n_cons + c.p + j] = 1 if c.stratum[g] == strata_in[j] else 0
+            c.cons[i * c.n_cons + c.p + j] = 1 if c.rec[g * c.stride + 2] == strata_in[j] else 0
     for j in range(c.n_cons):
         c.target[j] = 0
         c.partial[j] = 0
         c.rem_lo[n * c.n_cons + j] = 0
         c.rem_hi[n * c.n_cons + j] = 0
         for i in range(n):
-            c.target[j] += c.cons[i * c.n_cons + j] * c.y[c.block[i]]
+            c.target[j] += c.cons[i * c.n_cons + j] * c.rec[c.block[i] * c.stride + 1]
     for i in range(n - 1, -1, -1):
         g = c.block[i]
         for j in range(c.n_cons):
-            v = c.cons[i * c.n_cons + j] * c.m[g]
+            v = c.cons[i * c.n_cons + j] * c.rec[g * c.stride]
             lo = v if v < 0 else 0
             hi = v if v > 0 else 0
             c.rem_lo[i * c.n_cons + j] = c.rem_lo[(i + 1) * c.n_cons + j] + lo
@@ -377,7 +378,7 @@ cdef int block_move(Chain *c, bitgen_t *bg, int64_t r) noexcept nogil:
             break
     for i in range(n):
         g = c.block[i]
-        v = c.fiber[pick * n + i] - c.y[g]
+        v = c.fiber[pick * n + i] - c.rec[g * c.stride + 1]
         if v != 0:
             change_y(c, g, v)
     return 1
@@ -425,21 +426,32 @@ def run_chain(object bit_generator,
     cdef int64_t[::1] xbuf = np.zeros(C_MAX_BLOCK, dtype=np.int64)
     cdef int64_t[::1] fiber = np.zeros(C_MAX_FIBER * C_MAX_BLOCK, dtype=np.int64)
     cdef double[::1] fiber_lw = np.zeros(C_MAX_FIBER)
-    cdef int64_t dummy = 0
 
+    cdef int64_t p = w.shape[1]
+    cdef int64_t stride = 3 + p + q
+    cdef int64_t[:, ::1] records = np.empty((K, stride), dtype=np.int64)
+    for g in range(K):
+        records[g, 0] = m[g]
+        records[g, 1] = y[g]
+        records[g, 2] = stratum[g]
+        for i in range(p):
+            records[g, 3 + i] = w[g, i]
+        for i in range(q):
+            records[g, 3 + p + i] = z[g, i]
     c.K = K
-    c.p = w.shape[1]
+    c.p = p
     c.q = q
-    c.m = &m[0]
-    c.z = &z[0, 0] if q > 0 else &dummy
-    c.w = &w[0, 0] if c.p > 0 else &dummy
-    c.stratum = &stratum[0]
+    c.stride = stride
+    c.rec = &records[0, 0]
     c.start = &start[0]
     c.size = &size[0]
     c.theta = &theta[0]
+    c.tilted = False
+    for g in range(K):
+        if theta[g] != 0.0:
+            c.tilted = True
     c.log_fact = &log_fact[0]
     c.fixed = fixed
-    c.y = &y[0]
     c.T = &T[0]
     c.r = r
     c.block = &block[0]
@@ -475,6 +487,8 @@ def run_chain(object bit_generator,
         counters[0] += moves
         counters[1] += changed
         counters[2] += skipped
+    for g in range(K):
+        y[g] = records[g, 1]
 
 
 def bounded_draws(object bit_generator, uint32_t bound, int64_t n):
