@@ -457,7 +457,13 @@ def _test_rows(effect: str, dist: ConditionalDistribution, engine: str,
                "p_value": t.p_value, "mid_p_value": t.mid_p_value, "df": t.df,
                "n_points": dist.n_points, "engine": engine, "mcse": 0.0, "mcse_mid_p": 0.0,
                "n_draws": dist.n_draws, "note": t.note}
-        if dist.is_monte_carlo and t.test == "probability" and observed_draws < _PROBABILITY_DRAWS:
+        if (dist.is_monte_carlo and t.test == "likelihood_ratio"
+                and dist.n_points > _BATCH_LR_POINTS):
+            row["mcse"] = row["mcse_mid_p"] = np.nan
+            row["note"] = (f"the likelihood-ratio ordering of {dist.n_points:,} support points is "
+                           "estimated from the draws and was not re-evaluated on batches (too "
+                           "costly), so its Monte Carlo error is unknown: use the score test")
+        elif dist.is_monte_carlo and t.test == "probability" and observed_draws < _PROBABILITY_DRAWS:
             row["mcse"] = row["mcse_mid_p"] = np.nan
             row["note"] = (f"the observed statistic was drawn {observed_draws} times: too few to "
                            "rank support points by estimated probability; this Monte Carlo "

@@ -278,7 +278,7 @@ def _direct_worker(flat, z, n, seed, state=None):
 
 
 def draw_direct(net, design, options: SamplerOptions, seeds, beta=None,
-                continue_from: "Sample | None" = None) -> Sample:
+                continue_from: "Sample | None" = None, sizes=None) -> Sample:
     """Independent draws of T from the nuisance network `net` of `design`.
 
     Parameters
@@ -290,6 +290,8 @@ def draw_direct(net, design, options: SamplerOptions, seeds, beta=None,
     continue_from : Sample, optional
         An earlier direct sample of the same design and tilt: its streams are continued, so the
         draws equal those of one longer run.
+    sizes : list of int, optional
+        Draws per chain (default: ``options.per_chain()``).
     """
     t0 = time.perf_counter()
     prob = net.problem
@@ -306,7 +308,7 @@ def draw_direct(net, design, options: SamplerOptions, seeds, beta=None,
     key = design_key(design)
     seeds = _check_seeds(seeds, options)
     _check_continuation(continue_from, "direct", key, options, beta)
-    sizes = options.per_chain()
+    sizes = options.per_chain() if sizes is None else [int(s) for s in sizes]
     states = ([s["bit_generator"] for s in continue_from.states] if continue_from is not None
               else [None] * len(sizes))
     config, parallel = _parallel(options)
@@ -431,7 +433,8 @@ def _check_continuation(previous, engine: str, design_key: str, options: Sampler
         raise DataError("the sample to continue was drawn at another tilt")
 
 
-def draw_mcmc(design, options: SamplerOptions, seeds, beta=None, continue_from=None) -> Sample:
+def draw_mcmc(design, options: SamplerOptions, seeds, beta=None, continue_from=None,
+              sizes=None) -> Sample:
     """Markov chain draws of T given the nuisance statistics of `design`.
 
     Parameters
@@ -441,6 +444,8 @@ def draw_mcmc(design, options: SamplerOptions, seeds, beta=None, continue_from=N
     continue_from : Sample, optional
         An earlier MCMC sample of the same design and options, whose chains are continued exactly
         (no new warm-up), so that the draws equal those of one longer run.
+    sizes : list of int, optional
+        Draws per chain (default: ``options.per_chain()``).
     """
     t0 = time.perf_counter()
     rc = recode(design)
@@ -463,7 +468,7 @@ def draw_mcmc(design, options: SamplerOptions, seeds, beta=None, continue_from=N
     key = design_key(design)
     seeds = _check_seeds(seeds, options)
     _check_continuation(continue_from, "mcmc", key, options, beta)
-    sizes = options.per_chain()
+    sizes = options.per_chain() if sizes is None else [int(s) for s in sizes]
     if continue_from is not None:
         starts = [s["y"] for s in continue_from.states]
         states = [s["bit_generator"] for s in continue_from.states]
@@ -566,15 +571,30 @@ class PartSampler:
         self.sample: Sample | None = None
 
     def run(self, n_draws: int) -> Sample:
-        """Add `n_draws` draws (in all) and return the whole sample so far."""
+        """Add `n_draws` draws (in all) and return the whole sample so far.
+
+        The draws in all are shared out as one run of that total would share them (the first
+        ``total % n_chains`` chains one more), and each round adds to every chain the difference,
+        so any split into rounds gives exactly the chains of one run. The first round must give
+        every chain at least one draw (its warm-up runs then).
+        """
         import dataclasses
 
-        opts = dataclasses.replace(self.options, n_draws=int(max(n_draws, self.options.n_chains)))
+        before = 0 if self.sample is None else self.sample.n_draws
+        total = before + int(n_draws)
+        if self.sample is None and total < self.options.n_chains:
+            raise DataError(f"the first round needs at least one draw per chain "
+                            f"({self.options.n_chains})")
+        opts = dataclasses.replace(self.options, n_draws=max(total, self.options.n_chains))
+        now = opts.per_chain()
+        had = ([c.shape[0] for c in self.sample.chains] if self.sample is not None
+               else [0] * len(now))
+        sizes = [a - b for a, b in zip(now, had)]
         if self.engine == "direct":
             more = draw_direct(self.net, self.design, opts, self.seeds, beta=self.beta,
-                               continue_from=self.sample)
+                               continue_from=self.sample, sizes=sizes)
         else:
             more = draw_mcmc(self.design, opts, self.seeds, beta=self.beta,
-                             continue_from=self.sample)
+                             continue_from=self.sample, sizes=sizes)
         self.sample = more if self.sample is None else self.sample.append(more)
         return self.sample
