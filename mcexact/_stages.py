@@ -90,16 +90,24 @@ class StageProblem:
         return coded * self.interest_step + self.interest_offset
 
 
-def _greedy_extremes(values: np.ndarray, trials: np.ndarray, events: int) -> tuple[int, int]:
-    """Least and greatest sum of `events` unit values drawn from groups (value, trials)."""
-    order = np.argsort(values, kind="stable")
-    v, m = values[order], trials[order]
-    before = np.cumsum(m) - m
-    low_take = np.clip(events - before, 0, m)
-    v_desc, m_desc = v[::-1], m[::-1]
-    before_desc = np.cumsum(m_desc) - m_desc
-    high_take = np.clip(events - before_desc, 0, m_desc)
-    return int(low_take @ v), int(high_take @ v_desc)
+def _greedy_extremes(values: np.ndarray, trials: np.ndarray, stratum: np.ndarray,
+                     events: np.ndarray) -> np.ndarray:
+    """Per stratum, the least and greatest sum of its `events` unit values drawn from its groups
+    (value, trials): the smallest (largest) values first. Returns (H, 2) int64; one pass over all
+    strata at once (groups sorted by stratum, then value)."""
+    H = events.shape[0]
+    out = np.zeros((H, 2), dtype=np.int64)
+    for col, sign in ((0, 1), (1, -1)):
+        order = np.lexsort((sign * values, stratum))
+        v, m, h = values[order], trials[order], stratum[order]
+        cm = np.cumsum(m)
+        start_cm = np.zeros(H, dtype=np.int64)
+        firsts = np.flatnonzero(np.r_[True, h[1:] != h[:-1]])
+        start_cm[h[firsts]] = cm[firsts] - m[firsts]
+        before = cm - m - start_cm[h]                      # units of the stratum before this group
+        take = np.clip(events[h] - before, 0, m)
+        out[:, col] = np.bincount(h, weights=take * v, minlength=H).round().astype(np.int64)
+    return out
 
 
 def _mixed_radix(radices, first: int, what: str) -> list[int]:
@@ -249,9 +257,9 @@ def compile_design(design, order: np.ndarray | None = None) -> StageProblem:
     unit_max = np.zeros((K, p), dtype=np.int64)
     rem_trials = np.zeros(K, dtype=np.int64)
     if fixed:
-        ext = np.array([[_greedy_extremes(W[a:b, j], trials[a:b], int(n))
-                         for j in range(p)] for a, b, n in zip(starts, ends, n_events)],
-                       dtype=np.int64).reshape(len(starts), p, 2)
+        ext = np.zeros((len(starts), p, 2), dtype=np.int64)
+        for j in range(p):
+            ext[:, j, :] = _greedy_extremes(W[:, j], trials, stage_stratum, n_events)
         suffix = np.cumsum(ext[::-1], axis=0)[::-1]          # strata h..H-1
         after = np.concatenate([suffix[1:], np.zeros((1, p, 2), np.int64)])  # strata h+1..H-1
         later_lo[:] = after[stage_stratum, :, 0]
@@ -278,9 +286,8 @@ def compile_design(design, order: np.ndarray | None = None) -> StageProblem:
         u_lo = np.zeros(p, dtype=np.int64)
         u_hi = s.copy()                                    # covariates >= 0: partial sums only grow
         v_lo = np.zeros(q, dtype=np.int64)
-        v_hi = np.array([sum(_greedy_extremes(Z[a:b, j], trials[a:b], int(n))[1]
-                             for a, b, n in zip(starts, ends, n_events)) for j in range(q)],
-                        dtype=np.int64)
+        v_hi = np.array([_greedy_extremes(Z[:, j], trials, stage_stratum, n_events)[:, 1].sum()
+                         for j in range(q)], dtype=np.int64)
     else:
         c_radix = 1
         u_lo = np.minimum(W * trials[:, None], 0).sum(axis=0)
