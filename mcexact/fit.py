@@ -456,7 +456,8 @@ def _test_rows(effect: str, dist: ConditionalDistribution, engine: str,
         row = {"effect": effect, "test": t.test, "statistic": t.statistic,
                "p_value": t.p_value, "mid_p_value": t.mid_p_value, "df": t.df,
                "n_points": dist.n_points, "engine": engine, "mcse": 0.0, "mcse_mid_p": 0.0,
-               "n_draws": dist.n_draws, "note": t.note}
+               "n_draws": dist.n_draws, "ess": np.nan, "rhat": np.nan, "verdict": "",
+               "draws_needed": np.nan, "note": t.note}
         if (dist.is_monte_carlo and t.test == "likelihood_ratio"
                 and dist.n_points > _BATCH_LR_POINTS):
             row["mcse"] = row["mcse_mid_p"] = np.nan
@@ -605,7 +606,8 @@ def _estimate_row(term, effect, piece: ConditionalDistribution, scale: float, al
         "cmle": e.cmle * s, "median_unbiased": e.median_unbiased * s,
         "observed": int(piece.observed[0]), "n_points": e.n_points, "engine": engine,
         "mcse": 0.0, "mcse_ci_lower": 0.0, "mcse_ci_upper": 0.0, "mcse_p_value": 0.0,
-        "n_draws": piece.n_draws, "note": e.note}
+        "n_draws": piece.n_draws, "ess": np.nan, "rhat": np.nan, "verdict": "",
+        "draws_needed": np.nan, "note": e.note}
     if piece.is_monte_carlo:
         t = int(piece.observed[0])
         col = piece.support[:, 0].astype(float)
@@ -749,7 +751,8 @@ def fit(data, formula: str | None = None, *, interest=None, strata: str | None =
         if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))
                                   or not value > 0):
             raise DataError(f"{name} must be a positive number, got {value!r}")
-    if max_draws is not None and (isinstance(max_draws, bool) or not isinstance(max_draws, int)
+    if max_draws is not None and (isinstance(max_draws, bool)
+                                  or not isinstance(max_draws, (int, np.integer))
                                   or max_draws < n_draws):
         raise DataError(f"max_draws must be an integer >= n_draws, got {max_draws!r}")
     precision = Precision(n_draws, target_mcse, time_budget, max_draws,

@@ -201,11 +201,12 @@ def test_default_draw_limit_is_fifty_times_n_draws():
 
 @pytest.mark.parametrize("engine", ["direct", "mcmc"])
 def test_max_draws_is_never_exceeded(engine):
-    """n_draws = 1,000, max_draws = 1,002: the second round may add only 2 draws. The cap is a
-    cap: at most 1,002 draws (the stop message says the limit of 1,002 was reached)."""
+    """n_draws = 1,000, max_draws = 1,002: the second round may add only 2 draws, fewer than the
+    4 chains. The cap is a cap: exactly 1,002 draws, as the stop message says."""
     r = fit_dose(engine, n_draws=1000, target_mcse=1e-9, max_draws=1002, rng=15)
     assert part(r, "dose")["stopped"] == "draw limit of 1,002 reached"
-    assert part(r, "dose")["n_draws"] <= 1002
+    assert part(r, "dose")["n_draws"] == 1002
+    assert set(r.tests["n_draws"]) == {1002}
 
 
 @pytest.fixture(scope="module")
@@ -249,14 +250,42 @@ def test_part_sampler_uneven_rounds_equal_one_run(demo_dose_design, engine):
     assert _same_chains(split, whole)
 
 
-def test_fit_in_rounds_equals_one_run_of_the_same_draws(demo):
-    """fit with a target (here in rounds whose sizes are multiples of the 4 chains, from 2,000
-    draws asked for) gives the same tests and estimates as one fit of the total number of draws,
-    same seed."""
-    r = fit_demo_dose(demo, "direct", n_draws=2000, target_mcse=0.01, rng=5)
-    n = part(r, "dose_mg")["n_draws"]
-    assert part(r, "dose_mg")["stopped"].startswith("target") and n > 2000
-    one = fit_demo_dose(demo, "direct", n_draws=n, rng=5)
+def test_part_sampler_rounds_smaller_than_the_chains(demo_dose_design):
+    """A later round of 1 draw adds exactly 1 (to the first chain that one run would give it
+    to); a first round with fewer draws than chains is refused, since every chain's warm-up runs
+    in its first round (PartSampler.run's docstring)."""
+    d, net = demo_dose_design
+    o = SamplerOptions(n_draws=4, n_chains=4, n_warmup=50, thin=3)
+    rounds = PartSampler(d, "direct", o, np.random.SeedSequence(43), net=net)
+    rounds.run(8)
+    assert rounds.run(1).n_draws == 9
+    assert _same_chains(rounds.sample,
+                        PartSampler(d, "direct", o, np.random.SeedSequence(43), net=net).run(9))
+    with pytest.raises(DataError, match="first round"):
+        PartSampler(d, "mcmc", o, np.random.SeedSequence(43), net=net).run(3)
+
+
+@pytest.mark.parametrize("engine, start, target", [("direct", 1001, 0.01),
+                                                   ("mcmc", 1001, 0.02)])
+def test_fit_in_rounds_equals_one_run_of_the_same_draws(demo, engine, start, target):
+    """fit with a target, from 1,001 draws asked for (so rounds not divisible by the 4 chains),
+    gives the same tests and estimates as one fit of the total number of draws, same seed
+    (direct: the demo's dose_mg part; chains: the invented design, where the demo's p-values of
+    0 stop the chains at once)."""
+    if engine == "direct":
+        def run(**kw):
+            return fit_demo_dose(demo, engine, rng=5, **kw)
+        name = "dose_mg"
+    else:
+        def run(**kw):
+            return fit_dose(engine, rng=5, **kw)
+        name = "dose"
+    r = run(n_draws=start, target_mcse=target)
+    n = part(r, name)["n_draws"]
+    assert part(r, name)["stopped"] == f"target Monte Carlo error {target:g} reached"
+    assert n > start
+    one = run(n_draws=n)
+    assert part(one, name)["n_draws"] == n
     for a, b in ((r.tests, one.tests), (r.estimates, one.estimates)):
         numeric = a.select_dtypes("number").columns.drop(["draws_needed"])
         assert np.array_equal(a[numeric].to_numpy(float), b[numeric].to_numpy(float),
