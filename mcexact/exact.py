@@ -21,14 +21,15 @@ from mcexact.distribution import ConditionalDistribution
 
 __all__ = ["DEFAULT_MAX_NODES", "NuisanceNetwork", "Plan", "plan", "exact_distribution"]
 
-#: Default node budget. A node of the full network costs about 90 bytes at the peak of a stage
-#: (its arrays in the current and next stage plus a half-full hash table; measured by
-#: benchmarks/bench_network.py), so 25 million nodes stay near 2-3 GB and leave most of a 24 GB
-#: machine to the rest of the work.
+#: Default node budget. Measured by benchmarks/bench_network.py: a live node of the full network
+#: costs about 17-23 bytes at a stage's peak in the dense layout (the one used whenever the plan's
+#: boxes fit) and 100-160 bytes in the hashed one, so 25 million nodes stay under about 1 GB dense
+#: and 4 GB hashed, leaving most of a 24 GB machine to the rest of the work.
 DEFAULT_MAX_NODES = 25_000_000
 
-# A dense block slot costs 8 bytes against about 90 for a hashed node, so the dense layout is used
-# whenever its largest stage needs at most this many slots per node of budget (same memory or less).
+# A dense slot costs 8 bytes per stage array (measured about 17-23 bytes per live node with both
+# stages) against 100-160 for a hashed node, so the dense layout is used whenever its largest stage
+# needs at most this many slots per node of budget: no more memory than hashing, and far faster.
 DENSE_SLOTS_PER_NODE = 5
 
 # Arcs of the nuisance network are kept for the forward pass (16 bytes each); allow a few per node.
