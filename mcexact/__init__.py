@@ -11,6 +11,7 @@ from mcexact.distribution import ConditionalDistribution
 from mcexact.exact import DEFAULT_MAX_NODES, Plan, exact_distribution, plan
 from mcexact.fit import FitResult, fit
 from mcexact.demo import load_demo
+from mcexact.runs import load_run, save_run
 from mcexact.validation import ValidationReport, validate
 
 __version__ = "0.1.0.dev0"
@@ -28,6 +29,8 @@ __all__ = [
     "fit",
     "FitResult",
     "load_demo",
+    "load_run",
+    "save_run",
     "validate",
     "ValidationReport",
     "plan",

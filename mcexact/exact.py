@@ -82,6 +82,8 @@ class NuisanceNetwork:
     stage_nodes: list
     seconds: float = 0.0
     _ranges: tuple | None = field(default=None, repr=False)
+    #: Derived arrays kept for repeated sampling rounds (alias tables, null moments).
+    _cache: dict = field(default_factory=dict, repr=False)
 
     @property
     def n_nodes(self) -> int:

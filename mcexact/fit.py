@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import math
+import pathlib
 import sys
 import time
 import warnings
@@ -95,6 +96,49 @@ class FitResult:
     asymptotic: AsymptoticComparison | None
     alpha: float
     notes: list = field(default_factory=list)
+    interrupted: bool = False
+    #: What a continuation needs: settings, per-part seeds, samples and exact distributions.
+    _run: dict = field(default_factory=dict, repr=False, compare=False)
+
+    def save(self, path) -> "pathlib.Path":
+        """Write this result as a saved run (see :mod:`mcexact.runs`): design, settings, seeds,
+        chain states, draws and result tables, atomically (a run killed while writing leaves any
+        earlier file intact). Reopen it with :func:`mcexact.load_run`."""
+        from mcexact.runs import save_run
+
+        return save_run(self, path)
+
+    def extend(self, n_draws: int | None = None, *, target_mcse: float | None = None,
+               time_budget: float | None = None, max_draws: int | None = None,
+               progress: bool | None = None, n_jobs: int | None = None,
+               backend: str | None = None) -> "FitResult":
+        """More draws for every Monte Carlo part, continuing each chain where it stopped.
+
+        Parameters
+        ----------
+        n_draws : int, optional
+            Draws to add to every Monte Carlo part (default: as many as the run asked for at
+            first). The result equals that of one uninterrupted run of the total length with the
+            same seed; a part an interruption left unsampled starts afresh with `n_draws` draws.
+        target_mcse, time_budget, max_draws : optional
+            Then go on in rounds as in :func:`fit`, until every Monte Carlo p-value's error is at
+            most `target_mcse`, `time_budget` seconds are spent per part or a part has
+            `max_draws` draws in all.
+        progress, n_jobs, backend
+            As in :func:`fit` (they do not change the numbers).
+
+        Returns
+        -------
+        FitResult
+            A new result; this one is unchanged.
+
+        Raises
+        ------
+        DataError
+            If every part is exact (nothing to extend) or an option is invalid.
+        """
+        return _extend(self, n_draws, target_mcse, time_budget, max_draws, progress, n_jobs,
+                       backend)
 
     def summary(self) -> str:
         """A readable text report."""
@@ -128,12 +172,23 @@ class FitResult:
                                else {k: plain(v) for k, v in self.joint_estimate.items()}),
             "asymptotic": None if self.asymptotic is None else plain(self.asymptotic.to_dict()),
             "notes": list(self.notes),
+            "interrupted": bool(self.interrupted),
             "caution": CAUTION,
         }
         return plain(out)
 
     def to_json(self, **kwargs) -> str:
         return json.dumps(self.to_dict(), **kwargs)
+
+    def to_html(self, path=None, **kwargs) -> str:
+        """Self-contained HTML report (keywords of :func:`mcexact.html_report.render_html`:
+        ``title``, ``plots``); also written atomically to `path` when one is given."""
+        from mcexact import html_report
+
+        text = html_report.render_html(self, **kwargs)
+        if path is not None:
+            html_report.write_text_atomically(text, path)
+        return text
 
 
 def _records(frame: pd.DataFrame) -> list:
@@ -172,20 +227,59 @@ def _monitored_mcse(dist: ConditionalDistribution) -> float:
     return float(np.nanmax(errors)) if np.any(np.isfinite(errors)) else np.nan
 
 
-def _sample_to_precision(sampler: PartSampler, precision: Precision, what: str):
-    """Run `sampler` for the requested draws or to the requested precision (in rounds)."""
-    sample = sampler.run(precision.n_draws)
-    if precision.target_mcse is None and precision.time_budget is None:
-        return sample, "the requested number of draws"
-    t0 = time.perf_counter()
-    limit = precision.max_draws or 50 * precision.n_draws
+# Without a precision target, a fixed number of draws is still taken in this many rounds, so a
+# progress bar moves and an interruption (Ctrl-C) keeps the rounds already drawn. Rounds change no
+# number: any split into rounds gives the draws of one run (PartSampler).
+_FIXED_ROUNDS = 10
+
+
+class _Interrupt:
+    """Shared by the parts of one analysis: set when the user interrupted sampling (Ctrl-C), after
+    which no part samples any more and tilted refinements are skipped."""
+
+    def __init__(self):
+        self.set = False
+
+
+def _run_rounds(sampler: PartSampler, n: int, bar) -> None:
+    """Add `n` draws to `sampler` in up to `_FIXED_ROUNDS` rounds."""
+    done = 0
+    first = sampler.sample is None
+    step = max(-(-n // _FIXED_ROUNDS), sampler.options.n_chains if first else 1)
+    while done < n:
+        k = min(step, n - done)
+        sampler.run(k)
+        done += k
+        if bar is not None:
+            bar.update(k)
+
+
+def _sample_to_precision(sampler: PartSampler, precision: Precision, what: str,
+                         interrupt: _Interrupt):
+    """Run `sampler` for ``precision.n_draws`` more draws, then, with a target or budget, in
+    rounds until the precision, the budget or the draw limit is reached.
+
+    Returns the sample (None if an interruption came before any draw) and why sampling stopped.
+    Ctrl-C (KeyboardInterrupt) between or during rounds stops cleanly: the draws of the rounds
+    completed are kept and ``interrupt.set`` tells the other parts not to start.
+    """
+    if interrupt.set:
+        return sampler.sample, "interrupted by the user"
+    before = 0 if sampler.sample is None else sampler.sample.n_draws
+    rounds = precision.target_mcse is not None or precision.time_budget is not None
+    limit = precision.max_draws or before + 50 * (precision.n_draws or before)
     bar = None
     if precision.progress:
         from tqdm.auto import tqdm
 
-        bar = tqdm(total=limit, initial=sample.n_draws, desc=f"sampling {what}", unit="draw",
-                   leave=False)
+        bar = tqdm(total=limit if rounds else before + precision.n_draws, initial=before,
+                   desc=f"sampling {what}", unit="draw", leave=False, dynamic_ncols=True)
+    t0 = time.perf_counter()
     try:
+        _run_rounds(sampler, precision.n_draws, bar)
+        sample = sampler.sample
+        if not rounds:
+            return sample, "the requested number of draws"
         while True:
             n = sample.n_draws
             worst = _monitored_mcse(sample.to_distribution())
@@ -204,32 +298,48 @@ def _sample_to_precision(sampler: PartSampler, precision: Precision, what: str):
             if precision.time_budget is not None and elapsed > 0:
                 rate = n / max(sample.seconds, 1e-9)
                 more = int(max(1, min(more, rate * (precision.time_budget - elapsed))))
-            sample = sampler.run(more)
-            if bar is not None:
-                bar.update(sample.n_draws - n)
+            _run_rounds(sampler, more, bar)
+            sample = sampler.sample
+    except KeyboardInterrupt:
+        interrupt.set = True
+        return sampler.sample, "interrupted by the user"
     finally:
         if bar is not None:
             bar.close()
 
 
 def _conditional(design: Design, method: str, max_nodes, options: SamplerOptions, seed, what,
-                 precision: Precision):
+                 precision: Precision, interrupt: _Interrupt, previous: dict | None = None):
     """The conditional distribution of `design`'s interest statistics by the engine `method`
-    selects, with a record of the engine and the reason."""
-    p = plan(design, max_nodes=max_nodes)
-    info = {"plan": p.to_dict()}
+    selects, with a record of the engine and the reason.
+
+    Returns ``(dist, info, tilter, sample)``; `dist` is None when an interruption came before the
+    part drew anything. With `previous` (this part's record from an earlier run: engine, info,
+    exact distribution or sample), an exact part is reused and a Monte Carlo part continued.
+    """
+    if previous is not None and previous["engine"] == "exact":
+        return previous["dist"], dict(previous["info"]), None, None
     engine = method
-    if method == "auto":
-        engine = "exact" if p.fits_full else "direct" if p.fits_nuisance else "mcmc"
-        info["reason"] = {
-            "exact": "the full network fits the node budget",
-            "direct": "the full network is over the node budget but the nuisance network fits, "
-                      "so independent draws are possible",
-            "mcmc": "even the nuisance network is over the node budget, so Markov chains are used",
-        }[engine]
+    if previous is not None and previous["engine"] in ("direct", "mcmc"):
+        engine = previous["engine"]
+        info = {k: v for k, v in previous["info"].items()
+                if k not in ("seconds", "stopped", "n_draws")}
+        p = plan(design, max_nodes=max_nodes) if engine == "direct" else None
     else:
-        engine = "exact" if method == "enumerate" else method
-        info["reason"] = "requested"
+        p = plan(design, max_nodes=max_nodes)
+        info = {"plan": p.to_dict()}
+        if method == "auto":
+            engine = "exact" if p.fits_full else "direct" if p.fits_nuisance else "mcmc"
+            info["reason"] = {
+                "exact": "the full network fits the node budget",
+                "direct": "the full network is over the node budget but the nuisance network "
+                          "fits, so independent draws are possible",
+                "mcmc": "even the nuisance network is over the node budget, so Markov chains "
+                        "are used",
+            }[engine]
+        else:
+            engine = "exact" if method == "enumerate" else method
+            info["reason"] = "requested"
     if engine == "exact":
         if not p.fits_full:
             raise BudgetExceeded(f"mcexact: exact enumeration of {what} does not fit: {p.reason}; "
@@ -248,9 +358,16 @@ def _conditional(design: Design, method: str, max_nodes, options: SamplerOptions
                              f"which does not fit: {p.reason}; use method='mcmc'",
                              what="nuisance", reached=int(p.nuisance_reached or 0),
                              limit=p.max_nodes)
+    sample = None
     if engine in ("direct", "mcmc"):
-        sampler = PartSampler(design, engine, options, seed, net=p._network)
-        sample, stop = _sample_to_precision(sampler, precision, what)
+        sampler = PartSampler(design, engine, options, seed,
+                              net=p._network if engine == "direct" else None)
+        if previous is not None and previous.get("sample") is not None:
+            sampler.sample = previous["sample"]
+        sample, stop = _sample_to_precision(sampler, precision, what, interrupt)
+        info["engine"] = engine
+        if sample is None:
+            return None, info, None, None
         dist = sample.to_distribution()
         info.update(seconds=sample.seconds, stopped=stop)
     if engine == "mcmc":
@@ -263,14 +380,14 @@ def _conditional(design: Design, method: str, max_nodes, options: SamplerOptions
     tilter = None
     if dist.is_monte_carlo:
         info["n_draws"] = dist.n_draws
-    if engine == "direct":
+    if engine == "direct" and not interrupt.set:
         # Tilted refinement uses independent draws only: the Monte Carlo errors of tilted Markov
         # chains were not calibrated well enough yet (validation showed z spreads above 2).
 
         def tilter(beta, _net=p._network, _engine=engine):
             return PartSampler(design, _engine, options, seed, net=_net, beta=beta).run(
                 dist.n_draws).to_distribution()
-    return dist, info, tilter
+    return dist, info, tilter, sample
 
 
 def _batches(dist: ConditionalDistribution, n_batches: int = 10):
@@ -747,10 +864,7 @@ def fit(data, formula: str | None = None, *, interest=None, strata: str | None =
     alpha = float(alpha)
     options = SamplerOptions(n_draws=n_draws, n_chains=n_chains, n_warmup=n_warmup, thin=thin,
                              block_size=block_size, n_jobs=n_jobs, backend=backend)
-    for name, value in (("target_mcse", target_mcse), ("time_budget", time_budget)):
-        if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))
-                                  or not value > 0):
-            raise DataError(f"{name} must be a positive number, got {value!r}")
+    _check_positive(target_mcse=target_mcse, time_budget=time_budget)
     if max_draws is not None and (isinstance(max_draws, bool)
                                   or not isinstance(max_draws, (int, np.integer))
                                   or max_draws < n_draws):
@@ -768,21 +882,49 @@ def fit(data, formula: str | None = None, *, interest=None, strata: str | None =
         design = Design.from_formula(data, formula, interest=interest, strata=strata,
                                      trials=trials, decimals=decimals)
 
+    # One seed per part of the analysis (each effect, then the joint test), so that every part's
+    # draws are reproducible on their own. Without rng, fresh entropy is drawn and recorded.
+    root = rng if rng is not None else np.random.SeedSequence()
+    parts = list(design.effects) + ["joint"]
+    seeds = dict(zip(parts, spawn_seeds(root, len(parts))))
+    settings = {"method": method, "alpha": alpha, "max_nodes": max_nodes, "options": options,
+                "n_draws": int(n_draws), "target_mcse": target_mcse, "time_budget": time_budget,
+                "max_draws": max_draws, "tilted": bool(tilted), "asymptotic": bool(asymptotic),
+                "rng": _rng_record(root)}
+    return _analyse(design, settings, seeds, precision)
+
+
+def _analyse(design: Design, settings: dict, seeds: dict, precision: Precision,
+             previous: dict | None = None, fresh: Precision | None = None) -> FitResult:
+    """The analysis behind :func:`fit` and :meth:`FitResult.extend`: every part's conditional
+    distribution (continuing `previous` parts where given, sampling the others to `fresh`), then
+    tests, estimates and limits."""
+    method, alpha, max_nodes = settings["method"], settings["alpha"], settings["max_nodes"]
+    options, tilted = settings["options"], settings["tilted"]
+    target_mcse = settings["target_mcse"]
+    previous = previous or {}
+    interrupt = _Interrupt()
     notes = list(design.notes)
     effects = dict(design.effects)
     names = list(design.interest_names)
     scales = np.asarray(design.interest_scales, float)
-    # One seed per part of the analysis (each effect, then the joint test), so that every part's
-    # draws are reproducible on their own. Without rng, fresh entropy is drawn and recorded.
-    root = rng if rng is not None else np.random.SeedSequence()
-    seeds = spawn_seeds(root, len(effects) + 1)
+    # The part seeds are recreated from their records for every run, so that a continuation
+    # spawns the same child streams (chains, then tilts) as one uninterrupted run.
+    seeds = {k: _seed_copy(s) for k, s in seeds.items()}
     test_rows, estimate_rows = [], []
-    effect_dists, parts = {}, {}
-    for (effect, cols), seed in zip(effects.items(), seeds):
+    effect_dists, parts, records = {}, {}, {}
+    for effect, cols in effects.items():
         sub = design if len(effects) == 1 else design.with_interest([effect])
-        dist, info, tilter = _conditional(sub, method, max_nodes, options, seed,
-                                          f"effect {effect!r}", precision)
+        dist, info, tilter, sample = _conditional(
+            sub, method, max_nodes, options, seeds[effect], f"effect {effect!r}",
+            precision if effect in previous else fresh or precision, interrupt,
+            previous.get(effect))
         parts[effect] = info
+        records[effect] = _part_record(info, dist, sample)
+        if dist is None:
+            notes.append(f"effect {effect!r} was not computed: sampling was interrupted before "
+                         "it started (extend the run to compute it)")
+            continue
         effect_dists[effect] = dist
         test_rows += _test_rows(effect, dist, info["engine"], (alpha, target_mcse))
         for k, c in enumerate(cols):
@@ -790,18 +932,26 @@ def fit(data, formula: str | None = None, *, interest=None, strata: str | None =
             piece = dist.condition(others) if others else dist
             estimate_rows.append(_estimate_row(names[c], effect, piece, scales[c], alpha,
                                                info["engine"], tilter if tilted else None, k,
-                                               others, n_draws, (alpha, target_mcse)))
+                                               others, settings["n_draws"],
+                                               (alpha, target_mcse)))
 
     # Joint distribution of all interest columns.
     joint_estimate = None
     if len(effects) == 1:
-        joint = next(iter(effect_dists.values()))
+        joint = next(iter(effect_dists.values()), None)
         parts["joint"] = next(iter(parts.values()))
     else:
         try:
-            joint, info, _ = _conditional(design, method, max_nodes, options, seeds[-1],
-                                          "the joint test", precision)
+            joint, info, _, sample = _conditional(design, method, max_nodes, options,
+                                                  seeds["joint"], "the joint test",
+                                                  precision if "joint" in previous
+                                                  else fresh or precision,
+                                                  interrupt, previous.get("joint"))
             parts["joint"] = info
+            records["joint"] = _part_record(info, joint, sample)
+            if joint is None:
+                notes.append("the joint test was not computed: sampling was interrupted before "
+                             "it started (extend the run to compute it)")
         except BudgetExceeded as exc:
             joint = None
             notes.append(f"the joint test was not computed: {exc}")
@@ -820,6 +970,9 @@ def fit(data, formula: str | None = None, *, interest=None, strata: str | None =
             if row is None or not np.isfinite(dist.log_weights[row]):
                 notes.append(f"{part}: the observed statistic was never drawn; its p-values are "
                              "estimated as 0 and need more draws to be quoted")
+    if interrupt.set:
+        notes.append("sampling was interrupted by the user: the results use the draws made "
+                     "until then and no tilted refinement; extend the run before quoting them")
 
     tests = pd.DataFrame(test_rows, columns=_TEST_COLUMNS)
     estimates = pd.DataFrame(estimate_rows, columns=_ESTIMATE_COLUMNS)
@@ -829,15 +982,86 @@ def fit(data, formula: str | None = None, *, interest=None, strata: str | None =
         "engines": engines,
         "description": "; ".join(ENGINE_DESCRIPTIONS[e] for e in engines),
         "parts": parts,
-        "options": {"n_draws": n_draws, "n_chains": n_chains, "n_warmup": n_warmup,
-                    "thin": thin, "block_size": block_size, "n_jobs": n_jobs,
-                    "backend": backend, "max_nodes": max_nodes, "target_mcse": target_mcse,
-                    "time_budget": time_budget, "max_draws": max_draws},
-        "rng": _rng_record(root),
+        "options": {"n_draws": settings["n_draws"], "n_chains": options.n_chains,
+                    "n_warmup": options.n_warmup, "thin": options.thin,
+                    "block_size": options.block_size, "n_jobs": options.n_jobs,
+                    "backend": options.backend, "max_nodes": max_nodes,
+                    "target_mcse": target_mcse, "time_budget": settings["time_budget"],
+                    "max_draws": settings["max_draws"]},
+        "rng": settings["rng"],
     }
-    comparison = asymptotic_fit(design) if asymptotic else None
+    comparison = asymptotic_fit(design) if settings["asymptotic"] else None
+    run = {"settings": settings, "seeds": seeds, "parts": records}
     return FitResult(design, tests, estimates, joint_estimate, joint, effect_dists, method_info,
-                     comparison, alpha, notes)
+                     comparison, alpha, notes, interrupt.set, run)
+
+
+def _seed_copy(seed: np.random.SeedSequence) -> np.random.SeedSequence:
+    """A fresh SeedSequence equal to `seed` when it was created (no children spawned yet)."""
+    return np.random.SeedSequence(seed.entropy, spawn_key=seed.spawn_key,
+                                  pool_size=seed.pool_size)
+
+
+def _part_record(info: dict, dist, sample) -> dict:
+    """What a continuation of a part needs: its engine and record, and its exact distribution or
+    its sample (with the chains' states). An unsampled part has engine "skipped"."""
+    if dist is None:
+        return {"engine": "skipped", "info": info, "dist": None, "sample": None}
+    if info["engine"] == "exact":
+        return {"engine": "exact", "info": info, "dist": dist, "sample": None}
+    return {"engine": info["engine"], "info": info, "dist": None, "sample": sample}
+
+
+def _extend(result: FitResult, n_draws, target_mcse, time_budget, max_draws, progress, n_jobs,
+            backend) -> FitResult:
+    """:meth:`FitResult.extend`."""
+    import dataclasses
+
+    run = result._run
+    if not run:
+        raise DataError("this result holds no run to extend (it was not made by fit or "
+                        "load_run)")
+    records = run["parts"]
+    if all(r["engine"] == "exact" for r in records.values()):
+        raise DataError("nothing to extend: every part of this analysis is exact")
+    settings = dict(run["settings"])
+    options = settings["options"]
+    changes = {k: v for k, v in (("n_jobs", n_jobs), ("backend", backend)) if v is not None}
+    if changes:
+        options = dataclasses.replace(options, **changes)
+    add = settings["n_draws"] if n_draws is None else n_draws
+    if isinstance(add, bool) or not isinstance(add, (int, np.integer)) or add < 0:
+        raise DataError(f"n_draws must be a non-negative integer, got {n_draws!r}")
+    if add == 0 and target_mcse is None and time_budget is None:
+        raise DataError("extend needs n_draws > 0, a target_mcse or a time_budget")
+    _check_positive(target_mcse=target_mcse, time_budget=time_budget)
+    if max_draws is not None and (isinstance(max_draws, bool)
+                                  or not isinstance(max_draws, (int, np.integer))
+                                  or max_draws < 1):
+        raise DataError(f"max_draws must be a positive integer, got {max_draws!r}")
+    sampled = [r["sample"].n_draws for r in records.values() if r.get("sample") is not None]
+    settings.update(options=options, n_draws=int(max(sampled, default=0) + add),
+                    target_mcse=target_mcse if target_mcse is not None
+                    else settings["target_mcse"],
+                    time_budget=time_budget, max_draws=max_draws)
+    # A part that was never sampled starts with the draws added to the others (at least one per
+    # chain); `add` = 0 (a target only) starts it with the run's first request.
+    precision = Precision(int(add), target_mcse, time_budget, max_draws,
+                          sys.stderr.isatty() if progress is None else bool(progress))
+    previous = {k: r for k, r in records.items() if r["engine"] != "skipped"}
+    fresh_n = max(int(add) or run["settings"]["n_draws"], options.n_chains)
+    if any(r["engine"] == "skipped" for r in records.values()):
+        precision_fresh = dataclasses.replace(precision, n_draws=fresh_n)
+    else:
+        precision_fresh = precision
+    return _analyse(result.design, settings, run["seeds"], precision, previous, precision_fresh)
+
+
+def _check_positive(**values) -> None:
+    for name, value in values.items():
+        if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))
+                                  or not value > 0):
+            raise DataError(f"{name} must be a positive number, got {value!r}")
 
 
 def _rng_record(root) -> dict:

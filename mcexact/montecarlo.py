@@ -301,7 +301,14 @@ def draw_direct(net, design, options: SamplerOptions, seeds, beta=None,
         beta_arr = np.asarray(beta, float).reshape(-1)
         theta = prob.interest @ (beta_arr * prob.interest_step)
         arc_logp = _tilted_logp(net, theta)
-    flat = _flatten(net, arc_logp)
+    # Rounds of draws at the null reuse the alias tables and moments of the network.
+    cache = getattr(net, "_cache", None) if beta is None else None
+    if cache is not None and "flat" in cache:
+        flat = cache["flat"]
+    else:
+        flat = _flatten(net, arc_logp)
+        if cache is not None:
+            cache["flat"] = flat
     z = np.ascontiguousarray(prob.interest, dtype=np.int64)
     from mcexact.exact import design_key
 
@@ -319,7 +326,14 @@ def draw_direct(net, design, options: SamplerOptions, seeds, beta=None,
     from mcexact.exact import interest_ranges
 
     lo, hi = interest_ranges(net)[-1]
-    mean, cov = null_moments(net) if beta is None else (None, None)
+    if beta is not None:
+        mean, cov = None, None
+    elif cache is not None and "moments" in cache:
+        mean, cov = cache["moments"]
+    else:
+        mean, cov = null_moments(net)
+        if cache is not None:
+            cache["moments"] = (mean, cov)
     return Sample("direct", chains, np.asarray(design.observed_interest, np.int64),
                   tuple(design.interest_names), np.asarray(design.interest_scales, float),
                   log_total=net.log_total, support_min=lo[0] * prob.interest_step + prob.interest_offset,
