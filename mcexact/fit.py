@@ -744,6 +744,17 @@ def _estimate_row(term, effect, piece: ConditionalDistribution, scale: float, al
             row["mcse"] = np.nan
         row["mcse_ci_lower"] = s * _root_mcse(piece, e.ci_lower, ge, alpha / 2)
         row["mcse_ci_upper"] = s * _root_mcse(piece, e.ci_upper, le, alpha / 2)
+        drawn = 0
+        if piece.observed_index is not None:
+            drawn = int(sum(np.count_nonzero(c == piece.observed_index)
+                            for c in piece.chain_index))
+        if drawn == 0:
+            # Never drawn: the observed value lies beyond every value drawn, so it looks like an
+            # edge of the support and the estimate and a limit come out infinite, which the exact
+            # distribution need not say. No error estimate covers that.
+            row["verdict"] = ("not quotable: the observed statistic was never drawn, so the "
+                              "estimate and limits are only bounded by the values drawn")
+            row["draws_needed"] = np.nan
         if tilter is not None:
             better, note = _refine_by_tilting(piece, e, k, list(others), tilter, alpha, n_draws)
             for name, (value, err) in better.items():

@@ -348,3 +348,21 @@ def test_run_killed_while_writing_leaves_a_complete_file(tmp_path):
     leftovers = [f for f in os.listdir(tmp_path) if f != "big.mcx"]
     # A killed writer can leave its hidden temporary file behind, never a damaged target.
     assert all(f.startswith(".big.mcx.") and f.endswith(".tmp") for f in leftovers)
+
+
+def test_estimate_whose_observed_value_was_never_drawn_is_not_quotable():
+    """A far-tail observation that no draw reached: the Monte Carlo estimate looks infinite (the
+    observed value seems to sit at an edge), while exact enumeration gives a finite one. The
+    verdict must not call it quotable."""
+    z = np.arange(40) % 10
+    y = (z >= 8).astype(int)                      # events only at the two highest doses
+    y[3] = 1
+    design = mcexact.Design.from_arrays(y, z)
+    exact = mcexact.fit(design, asymptotic=False)
+    assert np.isfinite(exact.estimates.loc[0, "estimate"])
+    mc_fit = mcexact.fit(design, method="mcmc", n_draws=200, rng=1, **FAST)
+    dist = mc_fit.effect_distributions["z0"]
+    drawn = sum(int(np.count_nonzero(c == dist.observed_index)) for c in dist.chain_index)
+    assert drawn == 0, "the design no longer puts the observed value out of reach"
+    row = mc_fit.estimates.loc[0]
+    assert row["verdict"].startswith("not quotable: the observed statistic was never drawn")
