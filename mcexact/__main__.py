@@ -486,34 +486,24 @@ def _demo(args) -> int:
 
 # ------------------------------------------------------------------------------ plan
 
-def _auto_engine(p) -> tuple[str, str]:
-    """The engine fit(method="auto") picks for a part with plan `p`, and its reason (the rule
-    and words of mcexact.fit)."""
-    if p.fits_full:
-        return "exact", "the full network fits the node budget"
-    if p.fits_nuisance:
-        return "direct", ("the full network is over the node budget but the nuisance network "
-                          "fits, so independent draws are possible")
-    return "mcmc", "even the nuisance network is over the node budget, so Markov chains are used"
-
-
 def _plan_parts(design, max_nodes) -> dict:
     """Part -> record (terms, engine, reason, plan), split as fit() splits the analysis."""
     from mcexact.exact import plan
+    from mcexact.fit import auto_engine
 
     effects = dict(design.effects)
     parts = {}
     for effect in effects:
         sub = design if len(effects) == 1 else design.with_interest([effect])
         p = plan(sub, max_nodes=max_nodes)
-        engine, reason = _auto_engine(p)
+        engine, reason = auto_engine(p)
         parts[effect] = {"terms": [effect], "engine": engine, "reason": reason,
                          "plan": p.to_dict()}
     if len(effects) == 1:
         parts["joint"] = dict(parts[next(iter(effects))], same_as=next(iter(effects)))
     else:
         p = plan(design, max_nodes=max_nodes)
-        engine, reason = _auto_engine(p)
+        engine, reason = auto_engine(p)
         parts["joint"] = {"terms": list(effects), "engine": engine, "reason": reason,
                           "plan": p.to_dict()}
     return parts

@@ -9,15 +9,14 @@ and written atomically: to a temporary file in the same folder, then moved over 
 
 from __future__ import annotations
 
-import contextlib
 import errno
 import os
-import tempfile
 from pathlib import Path
 
 import pandas as pd
 
 from mcexact._exceptions import DataError, FileFormatError
+from mcexact._files import write_text_atomic
 
 __all__ = ["DATA_SUFFIXES", "read_table", "check_output_paths", "write_text_atomic"]
 
@@ -122,24 +121,3 @@ def check_output_paths(paths: dict) -> None:
         if not os.access(folder, os.W_OK | os.X_OK):
             raise PermissionError(errno.EACCES, f"folder {str(folder)!r} is not writable "
                                   f"(for {option})", str(target))
-
-
-def write_text_atomic(path: str | os.PathLike, text: str) -> Path:
-    """Write `text` (UTF-8) to `path` atomically; an existing file is replaced only once the new
-    one is complete. Returns the path."""
-    target = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)      # mkstemp creates 0600; give the usual mode
-        os.replace(tmp, target)
-    except BaseException:
-        with contextlib.suppress(OSError):
-            os.unlink(tmp)
-        raise
-    return target

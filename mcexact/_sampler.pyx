@@ -15,13 +15,17 @@ Two engines, both recording only the interest statistic T = Z'y of each draw (ne
   - *swap* (`run_unit_swaps`; nuisance = intercept and/or strata only): an event trial and a
     non-event trial of one stratum exchange their outcomes, exact for the null and for tilted
     targets (see the function);
-  - *block* (`run_chain`; integer nuisance columns): a random block of r groups (half the time from one stratum,
-    half the time from anywhere) is redrawn from its exact conditional distribution given the rest,
-    over the small fiber {x : W_A'x = W_A'y_A, stratum counts of A fixed, 0 <= x <= m_A}
-    enumerated by depth-first search with bound pruning. A Gibbs move: always accepted. A block
-    whose fiber is too large to enumerate is left as it is; that decision depends on the fiber only,
-    so the chain stays reversible. Block moves need not connect the whole fiber of the data
-    (irreducibility is not guaranteed): the diagnostics compare chains and exact answers.
+  - *block* (`run_chain`; integer nuisance columns): a random block of r groups is redrawn from
+    its exact conditional distribution given the rest, over the small fiber
+    {x : W_A'x = W_A'y_A, stratum counts of A fixed, 0 <= x <= m_A} enumerated by depth-first
+    search with bound pruning. A Gibbs move: always accepted. The block comes from one stratum,
+    from anywhere, or (with fixed strata) from a few distinct strata, about r / S groups from each
+    ("cross-strata" moves): a block from anywhere holds one or two groups per stratum, all frozen by
+    their strata's fixed counts, while a within-stratum block must also keep its own nuisance sums;
+    a block from two strata lets events trade nuisance sums between them. A block whose fiber is
+    too large to enumerate is left as it is; that decision depends on the fiber only, so the chain
+    stays reversible. Block moves need not connect the whole fiber of the data (irreducibility is
+    not guaranteed): the diagnostics compare chains and exact answers.
 
 Random numbers come from a numpy BitGenerator through its `bitgen_t` capsule, under its lock.
 """
@@ -221,6 +225,18 @@ cdef struct Chain:
     int64_t n_fiber
     int64_t visits
     bint overflow
+    # Block selection (fixed strata only). Informative strata: two or more groups and both
+    # outcomes present (0 < events < trials), in stratum order, with their cumulative group counts
+    # (size-proportional choice); per stratum, the count of the rarer outcome ("anchor" trials)
+    # and which outcome that is.
+    int64_t n_inf
+    const int64_t *inf            # n_inf strata
+    const int64_t *inf_cum        # n_inf + 1 cumulative sizes
+    const int64_t *anchor_total   # H
+    const int64_t *anchor_events  # H: 1 if the anchor trials are the events, 0 the non-events
+    int64_t cross_quarters        # moves in 4 that take the block from several strata
+    int64_t n_cross               # strata per cross-strata block
+    bint anchored
 
 
 cdef inline double log_binom(const Chain *c, int64_t m, int64_t y) noexcept nogil:
@@ -289,33 +305,123 @@ cdef bint in_block(const Chain *c, int64_t n, int64_t g) noexcept nogil:
     return False
 
 
-cdef int block_move(Chain *c, bitgen_t *bg, int64_t r) noexcept nogil:
+cdef int64_t pick_informative(const Chain *c, bitgen_t *bg) noexcept nogil:
+    """An informative stratum, chosen with probability proportional to its number of groups
+    (binary search of a random group among the informative strata's cumulative sizes)."""
+    cdef int64_t u = draw_bounded(bg, <uint32_t> c.inf_cum[c.n_inf])
+    cdef int64_t lo = 0, hi = c.n_inf - 1, mid
+    while lo < hi:
+        mid = (lo + hi) // 2
+        if c.inf_cum[mid + 1] <= u:
+            lo = mid + 1
+        else:
+            hi = mid
+    return c.inf[lo]
+
+
+cdef int64_t anchor_group(const Chain *c, bitgen_t *bg, int64_t h) noexcept nogil:
+    """The group of a uniformly random anchor trial of stratum h: each group with probability
+    a_g / A_h, a_g its trials of the anchor outcome (events, or non-events when those are rarer)
+    in the current y and A_h = sum of a_g over the stratum (fixed)."""
+    cdef int64_t u = draw_bounded(bg, <uint32_t> c.anchor_total[h])
+    cdef int64_t g, a, acc = 0
+    cdef int64_t last = c.start[h] + c.size[h] - 1
+    for g in range(c.start[h], last):
+        a = c.rec[g * c.stride + 1]
+        if not c.anchor_events[h]:
+            a = c.rec[g * c.stride] - a
+        acc += a
+        if u < acc:
+            return g
+    return last
+
+
+cdef int64_t fill_from(Chain *c, bitgen_t *bg, int64_t first, int64_t count, int64_t k,
+                       int64_t n0, int64_t anchor_h) noexcept nogil:
+    """Put k distinct groups of first..first+count-1 (all of them if count <= k) into the block
+    after its first n0 entries; returns how many were put. With ``anchor_h >= 0`` the first group
+    is that of a random anchor trial of stratum anchor_h (`anchor_group`), the others uniform.
+
+    Why an anchor keeps the move reversible although it depends on y: the block part B is then
+    chosen with probability sum_{g in B} a_g(y) / (A_h C(count - 1, k - 1)), and sum_{g in B}
+    a_g(y) is the block's count of the anchor outcome in stratum h, which the Gibbs redraw keeps
+    fixed (stratum counts of the block are among its constraints). So every y' the move can reach
+    from y chooses the same block with the same probability, and the Gibbs move over the block's
+    fiber is reversible as with a selection that ignores y. The anchor puts a trial that can
+    change into the block: with a few events in a stratum of many groups, uniformly chosen groups
+    often hold none, and then the redraw cannot move any event of that stratum."""
+    cdef int64_t i = 0, g
+    if count <= k:
+        for i in range(count):
+            c.block[n0 + i] = first + i
+        return count
+    if anchor_h >= 0:
+        c.block[n0] = anchor_group(c, bg, anchor_h)
+        i = 1
+    while i < k:
+        g = first + draw_bounded(bg, <uint32_t> count)
+        if not in_block(c, n0 + i, g):
+            c.block[n0 + i] = g
+            i += 1
+    return k
+
+
+cdef int64_t choose_block(Chain *c, bitgen_t *bg, int64_t r, bint *cross) noexcept nogil:
+    """Fill c.block with the groups of the next move; returns their number.
+
+    One draw in 4 picks the kind: the first `cross_quarters` values take the block from
+    `n_cross` distinct informative strata (size-proportional, by rejection), r / n_cross groups
+    from each; the others alternate between one stratum and all groups. None of these choices
+    depends on y, except the anchors (see `fill_from`)."""
+    cdef int64_t kind = draw_bounded(bg, 4)
+    cdef int64_t h, i, j, n, k, n_s, tries
+    cdef int64_t chosen[8]
+    cdef bint dup
+    cross[0] = False
+    if kind < c.cross_quarters and c.n_inf >= 2:
+        cross[0] = True
+        n_s = c.n_cross if c.n_cross < c.n_inf else c.n_inf
+        i = 0
+        tries = 0
+        while i < n_s:
+            h = pick_informative(c, bg)
+            dup = False
+            for j in range(i):
+                if chosen[j] == h:
+                    dup = True
+            tries += 1
+            if not dup:
+                chosen[i] = h
+                i += 1
+            elif tries > 64 * n_s:
+                n_s = i             # a few strata hold nearly all groups: take what was found
+        n = 0
+        for i in range(n_s):
+            h = chosen[i]
+            k = (r - n) // (n_s - i)
+            n += fill_from(c, bg, c.start[h], c.size[h], k, n,
+                           h if c.anchored else -1)
+        return n
+    if kind % 2 == 0:
+        if c.anchored and c.n_inf >= 1:
+            h = pick_informative(c, bg)
+            return fill_from(c, bg, c.start[h], c.size[h], r, 0, h)
+        # A random group's stratum (so strata are chosen in proportion to their size).
+        h = c.rec[draw_bounded(bg, <uint32_t> c.K) * c.stride + 2]
+        return fill_from(c, bg, c.start[h], c.size[h], r, 0, -1)
+    return fill_from(c, bg, 0, c.K, r, 0, -1)
+
+
+cdef int block_move(Chain *c, bitgen_t *bg, int64_t r, bint *cross) noexcept nogil:
     """Redraw a random block from its exact conditional distribution. Returns 1 if y changed,
-    0 if it could not change (a single-point fiber), -1 if the fiber was too large."""
+    0 if it did not (a single-point fiber, or the redraw gave the block back), -1 if the fiber
+    was too large. `cross` is set when the block came from several strata."""
     cdef int64_t n, h, g, i, j, k, s, pick, v, lo, hi
     cdef int64_t n_strata_in = 0
     cdef int64_t strata_in[32]
     cdef double top, total, u, acc
-    cdef int64_t first, count
-    cdef bint within = draw_bounded(bg, 2) == 0
-    if within:
-        # A random group's stratum (so strata are chosen in proportion to their size).
-        h = c.rec[draw_bounded(bg, <uint32_t> c.K) * c.stride + 2]
-        first, count = c.start[h], c.size[h]
-    else:
-        first, count = 0, c.K
-    if count <= r:
-        n = count
-        for i in range(n):
-            c.block[i] = first + i
-    else:
-        n = r
-        i = 0
-        while i < n:
-            g = first + draw_bounded(bg, <uint32_t> count)
-            if not in_block(c, i, g):
-                c.block[i] = g
-                i += 1
+    cdef int res
+    n = choose_block(c, bg, r, cross)
     if n < 2:
         return 0
     c.r = n
@@ -376,12 +482,14 @@ cdef int block_move(Chain *c, bitgen_t *bg, int64_t r) noexcept nogil:
         if u < acc:
             pick = i
             break
+    res = 0
     for i in range(n):
         g = c.block[i]
         v = c.fiber[pick * n + i] - c.rec[g * c.stride + 1]
         if v != 0:
             change_y(c, g, v)
-    return 1
+            res = 1
+    return res
 
 
 def run_chain(object bit_generator,
@@ -399,13 +507,21 @@ def run_chain(object bit_generator,
               int64_t burn,
               int64_t thin,
               int64_t[:, ::1] out,
-              int64_t[::1] counters):
+              int64_t[::1] counters,
+              int64_t cross_quarters=2,
+              int64_t n_cross=2,
+              bint anchored=True):
     """Run one block-move chain: `burn` moves, then `out.shape[0]` records of T, one every
     `thin` moves.
 
     `y` (the state, in stage order) is updated in place, so a chain can be continued exactly.
     `counters` receives [moves, moves that changed y, moves skipped because a block's fiber was
-    too large]. All arrays are validated by the caller.
+    too large] and, if it has 5 entries, [cross-strata moves, cross-strata moves that changed y].
+    With fixed strata, `cross_quarters` moves in 4 take the block from `n_cross` (2 to 8)
+    distinct strata, and `anchored` starts each stratum's part of a block at a random trial of
+    its rarer outcome (see `fill_from`); ``cross_quarters=0, anchored=False`` gives the earlier
+    kernel's moves (half within one stratum, half from anywhere). All arrays are validated by the
+    caller.
     """
     cdef bitgen_t *bg = _bitgen(bit_generator)
     cdef Chain c
@@ -464,6 +580,39 @@ def run_chain(object bit_generator,
     c.fiber = &fiber[0]
     c.fiber_lw = &fiber_lw[0]
 
+    # Informative strata and anchor counts, from the starting y: with fixed strata both are
+    # invariants of the chain.
+    cdef int64_t[::1] events_h = np.zeros(H, dtype=np.int64)
+    cdef int64_t[::1] trials_h = np.zeros(H, dtype=np.int64)
+    cdef int64_t[::1] anchor_total = np.zeros(H, dtype=np.int64)
+    cdef int64_t[::1] anchor_events = np.zeros(H, dtype=np.int64)
+    cdef int64_t[::1] inf = np.zeros(H + 1, dtype=np.int64)
+    cdef int64_t[::1] inf_cum = np.zeros(H + 2, dtype=np.int64)
+    cdef int64_t n_inf = 0
+    for g in range(K):
+        events_h[stratum[g]] += y[g]
+        trials_h[stratum[g]] += m[g]
+    for h in range(H):
+        anchor_events[h] = 1 if 2 * events_h[h] <= trials_h[h] else 0
+        anchor_total[h] = events_h[h] if anchor_events[h] else trials_h[h] - events_h[h]
+        if fixed and size[h] >= 2 and 0 < events_h[h] < trials_h[h]:
+            inf[n_inf] = h
+            inf_cum[n_inf + 1] = inf_cum[n_inf] + size[h]
+            n_inf += 1
+    if not 2 <= n_cross <= 8:
+        raise ValueError("mcexact: n_cross must be from 2 to 8")
+    c.n_inf = n_inf
+    c.inf = &inf[0]
+    c.inf_cum = &inf_cum[0]
+    c.anchor_total = &anchor_total[0]
+    c.anchor_events = &anchor_events[0]
+    c.cross_quarters = cross_quarters if fixed else 0
+    c.n_cross = n_cross
+    c.anchored = anchored and fixed
+    cdef bint cross = False
+    cdef bint extra = counters.shape[0] >= 5
+    cdef int64_t n_cross_moves = 0, cross_changed = 0
+
     for g in range(K):
         for i in range(q):
             T[i] += y[g] * z[g, i]
@@ -472,12 +621,15 @@ def run_chain(object bit_generator,
     with bit_generator.lock, nogil:
         rec = 0
         while rec < n_rec:
-            res = block_move(&c, bg, r)
+            res = block_move(&c, bg, r, &cross)
             moves += 1
             if res == 1:
                 changed += 1
             elif res == -1:
                 skipped += 1
+            if cross:
+                n_cross_moves += 1
+                cross_changed += res == 1
             countdown -= 1
             if countdown == 0:
                 for i in range(q):
@@ -487,6 +639,9 @@ def run_chain(object bit_generator,
         counters[0] += moves
         counters[1] += changed
         counters[2] += skipped
+        if extra:
+            counters[3] += n_cross_moves
+            counters[4] += cross_changed
     for g in range(K):
         y[g] = records[g, 1]
 

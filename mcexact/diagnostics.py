@@ -9,8 +9,8 @@ kept), so that every estimator sees a rectangular array.
   (``"mean"``, ``"identity"``), on rank-normalised split chains (``"bulk"``) or on the 5% and 95%
   quantile indicators (``"tail"``).
 - :func:`rhat`: rank-normalised split R-hat (Vehtari et al. 2021).
-- :func:`mcse_mean`: Monte Carlo standard error of a mean, by batch means (Flegal & Jones 2010) or
-  from the effective sample size.
+- :func:`mcse_mean`: Monte Carlo standard error of a mean, by batch means (Flegal & Jones 2010),
+  lugsail batch means (Vats & Flegal 2022) or from the effective sample size.
 - :func:`mcse_proportion`: the same for a Monte Carlo p-value, i.e. the mean of an indicator.
 - :func:`draws_needed`: draws needed for a target standard error of a proportion.
 - :func:`chain_agreement`: a homogeneity test of the per-chain estimates of a proportion, to flag
@@ -29,6 +29,8 @@ References
    MCMC (with discussion). *Bayesian Analysis* 16(2), 667-.
 .. [3] Flegal, J. M. & Jones, G. L. (2010). Batch means and spectral variance estimators in
    Markov chain Monte Carlo. *Annals of Statistics* 38(2), 1034-1070.
+.. [4] Vats, D. & Flegal, J. M. (2022). Lugsail lag windows for estimating time-average
+   covariance matrices. *Biometrika* 109(3), 735-750.
 """
 
 from __future__ import annotations
@@ -65,7 +67,7 @@ TAIL_PROBS = (0.05, 0.95)
 
 ESS_METHODS = ("mean", "identity", "bulk", "tail")
 RHAT_METHODS = ("rank", "bulk", "folded")
-MCSE_METHODS = ("batch", "ess")
+MCSE_METHODS = ("batch", "lugsail", "ess")
 
 
 # ------------------------------------------------------------------------------------- input
@@ -432,7 +434,7 @@ def rhat(x: ArrayLike, method: Literal["rank", "bulk", "folded"] = "rank") -> fl
     return bulk if math.isnan(folded) else max(bulk, folded)
 
 
-def mcse_mean(x: ArrayLike, method: Literal["batch", "ess"] = "batch") -> float:
+def mcse_mean(x: ArrayLike, method: Literal["batch", "lugsail", "ess"] = "batch") -> float:
     """Monte Carlo standard error of the mean of all draws.
 
     Parameters
@@ -440,20 +442,25 @@ def mcse_mean(x: ArrayLike, method: Literal["batch", "ess"] = "batch") -> float:
     x : array_like
         Draws shaped ``(chain, draw)``; a 1-D array is one chain; a list of chains of unequal
         lengths is truncated to the shortest.
-    method : {"batch", "ess"}
+    method : {"batch", "lugsail", "ess"}
         ``"batch"`` (default): batch means (Flegal & Jones 2010). Every chain of ``n`` draws is
         cut into ``a = n // b`` batches of ``b = floor(sqrt(n))`` draws (the last ``n - a b``
         draws of a chain join no batch); with ``Y_k`` the ``K = m a`` batch means of all chains
-        and ``Ybar`` their mean, ``sigma^2 = b / (K - 1) sum_k (Y_k - Ybar)^2`` and
-        ``MCSE = sigma / sqrt(N)``, ``N`` the number of draws. Pooling the batches of all chains
-        around one grand mean lets disagreement between chains inflate the error.
+        and ``Ybar`` their mean, ``sigma^2_b = b / (K - 1) sum_k (Y_k - Ybar)^2`` and
+        ``MCSE = sigma_b / sqrt(N)``, ``N`` the number of draws. Pooling the batches of all
+        chains around one grand mean lets disagreement between chains inflate the error.
+        ``"lugsail"``: lugsail batch means (Vats & Flegal 2022, r = 3, c = 1/2),
+        ``sigma^2 = 2 sigma^2_b - sigma^2_{b'}`` with ``b' = max(1, b // 3)``. Batch means
+        underestimate the variance by about a multiple of ``1 / b`` when the autocorrelation is
+        long against the batch; the short batches' larger bias, subtracted, offsets it. When
+        the difference is not positive (short or nearly independent series), ``sigma^2_b``.
         ``"ess"``: ``sd / sqrt(ess(x, method="mean"))`` with ``sd`` the standard deviation of
         all draws (divisor ``N - 1``).
 
     Returns
     -------
     float
-        The MCSE. For independent draws both methods approach ``sd / sqrt(N)``. A constant
+        The MCSE. For independent draws all methods approach ``sd / sqrt(N)``. A constant
         series gives 0 (no spread; for a p-value indicator use :func:`mcse_proportion`, which
         never returns 0). NaN with a :class:`RuntimeWarning` when there are fewer than 4 draws
         per chain.
@@ -469,6 +476,8 @@ def mcse_mean(x: ArrayLike, method: Literal["batch", "ess"] = "batch") -> float:
        Markov chain Monte Carlo. *Annals of Statistics* 38(2), 1034-1070.
     .. [2] Geyer, C. J. (1992). Practical Markov chain Monte Carlo. *Statistical Science* 7,
        473-483.
+    .. [3] Vats, D. & Flegal, J. M. (2022). Lugsail lag windows for estimating time-average
+       covariance matrices. *Biometrika* 109(3), 735-750.
 
     Examples
     --------
@@ -488,12 +497,21 @@ def mcse_mean(x: ArrayLike, method: Literal["batch", "ess"] = "batch") -> float:
     total = arr.size
     if method == "ess":
         return float(np.std(arr, ddof=1)) / math.sqrt(ess(arr, method="mean"))
-    n = arr.shape[1]
-    size = math.isqrt(n)
-    n_batches = n // size
-    batch_means = arr[:, :n_batches * size].reshape(arr.shape[0] * n_batches, size).mean(axis=1)
-    sigma2 = size * float(np.var(batch_means, ddof=1))
+    size = math.isqrt(arr.shape[1])
+    sigma2 = _batch_variance(arr, size)
+    if method == "lugsail":
+        lugsail = 2.0 * sigma2 - _batch_variance(arr, max(1, size // 3))
+        if lugsail > 0.0:
+            sigma2 = lugsail
     return math.sqrt(sigma2 / total)
+
+
+def _batch_variance(arr: np.ndarray, size: int) -> float:
+    """Batch-means estimate ``b / (K - 1) sum_k (Y_k - Ybar)^2`` of the asymptotic variance, from
+    the ``K`` batches of `size` draws of all chains (a chain's last ``n % size`` draws left out)."""
+    n_batches = arr.shape[1] // size
+    batch_means = arr[:, :n_batches * size].reshape(arr.shape[0] * n_batches, size).mean(axis=1)
+    return size * float(np.var(batch_means, ddof=1))
 
 
 def mcse_proportion(indicator: ArrayLike, iid: bool = False) -> float:

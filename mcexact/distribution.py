@@ -16,7 +16,6 @@ from __future__ import annotations
 
 import json
 import os
-import tempfile
 from dataclasses import dataclass, field
 from typing import Mapping, Sequence
 
@@ -25,6 +24,7 @@ import pandas as pd
 from scipy.special import logsumexp
 
 from mcexact._exceptions import DataError, FileFormatError
+from mcexact._files import atomic_open
 from mcexact._json import plain
 
 __all__ = ["ConditionalDistribution"]
@@ -257,22 +257,9 @@ class ConditionalDistribution:
         path = os.fspath(path)
         header = json.dumps({"format": FILE_FORMAT, "version": FILE_VERSION,
                              "names": list(self.names), "info": plain(self.info)})
-        folder = os.path.dirname(os.path.abspath(path))
-        fd, tmp = tempfile.mkstemp(prefix=".mcexact-", suffix=".npz.tmp", dir=folder)
-        try:
-            with os.fdopen(fd, "wb") as fh:
-                np.savez(fh, support=self.support, log_weights=self.log_weights,
-                         observed=self.observed, scales=self.scales, header=np.array(header))
-                fh.flush()
-                os.fsync(fh.fileno())
-            umask = os.umask(0)
-            os.umask(umask)
-            os.chmod(tmp, 0o666 & ~umask)      # mkstemp creates 0600; give the usual mode
-            os.replace(tmp, path)
-        except BaseException:
-            if os.path.exists(tmp):
-                os.unlink(tmp)
-            raise
+        with atomic_open(path) as fh:
+            np.savez(fh, support=self.support, log_weights=self.log_weights,
+                     observed=self.observed, scales=self.scales, header=np.array(header))
 
     @classmethod
     def load(cls, path: str | os.PathLike) -> "ConditionalDistribution":

@@ -29,7 +29,7 @@ from mcexact.exact import exact_distribution, plan
 from mcexact.inference import column_inference, joint_cmle, joint_tests
 from mcexact.montecarlo import PartSampler, SamplerOptions, mcse_of_indicator, spawn_seeds
 
-__all__ = ["fit", "FitResult", "METHODS", "CAUTION"]
+__all__ = ["fit", "FitResult", "METHODS", "CAUTION", "auto_engine"]
 
 #: Engines `fit` accepts.
 METHODS = ("auto", "enumerate", "direct", "mcmc")
@@ -308,6 +308,26 @@ def _sample_to_precision(sampler: PartSampler, precision: Precision, what: str,
             bar.close()
 
 
+_AUTO_REASONS = {
+    "exact": "the full network fits the node budget",
+    "direct": "the full network is over the node budget but the nuisance network fits, so "
+              "independent draws are possible",
+    "mcmc": "even the nuisance network is over the node budget, so Markov chains are used",
+}
+
+
+def auto_engine(p) -> tuple[str, str]:
+    """The engine ``method="auto"`` chooses for a part with plan `p` (:func:`mcexact.plan`), and
+    why. (If the full network then overflows while being built, auto falls back to "direct".)"""
+    engine = "exact" if p.fits_full else "direct" if p.fits_nuisance else "mcmc"
+    return engine, _AUTO_REASONS[engine]
+
+
+# Tilted refinement with Markov chains (of the limits; see _refine_by_tilting). A switch kept for
+# measuring.
+_TILT_CHAINS = True
+
+
 def _conditional(design: Design, method: str, max_nodes, options: SamplerOptions, seed, what,
                  precision: Precision, interrupt: _Interrupt, previous: dict | None = None):
     """The conditional distribution of `design`'s interest statistics by the engine `method`
@@ -329,14 +349,7 @@ def _conditional(design: Design, method: str, max_nodes, options: SamplerOptions
         p = plan(design, max_nodes=max_nodes)
         info = {"plan": p.to_dict()}
         if method == "auto":
-            engine = "exact" if p.fits_full else "direct" if p.fits_nuisance else "mcmc"
-            info["reason"] = {
-                "exact": "the full network fits the node budget",
-                "direct": "the full network is over the node budget but the nuisance network "
-                          "fits, so independent draws are possible",
-                "mcmc": "even the nuisance network is over the node budget, so Markov chains "
-                        "are used",
-            }[engine]
+            engine, info["reason"] = auto_engine(p)
         else:
             engine = "exact" if method == "enumerate" else method
             info["reason"] = "requested"
@@ -380,11 +393,9 @@ def _conditional(design: Design, method: str, max_nodes, options: SamplerOptions
     tilter = None
     if dist.is_monte_carlo:
         info["n_draws"] = dist.n_draws
-    if engine == "direct" and not interrupt.set:
-        # Tilted refinement uses independent draws only: the Monte Carlo errors of tilted Markov
-        # chains were not calibrated well enough yet (validation showed z spreads above 2).
+    if (engine == "direct" or (engine == "mcmc" and _TILT_CHAINS)) and not interrupt.set:
 
-        def tilter(beta, _net=p._network, _engine=engine):
+        def tilter(beta, _net=p._network if p is not None else None, _engine=engine):
             return PartSampler(design, _engine, options, seed, net=_net, beta=beta).run(
                 dist.n_draws).to_distribution()
     return dist, info, tilter, sample
@@ -410,11 +421,13 @@ def _batches(dist: ConditionalDistribution, n_batches: int = 10):
     return out
 
 
-# A support point is "unsure" when its statistic differs from the observed one by less than this
-# many standard errors of that difference. The error comes from 10 batches (about 9 degrees of
-# freedom), so an exact tie escapes a band of 3 in about 1.5% of runs (Student t), one of 1.96 in
-# about 8% (measured in tests/test_montecarlo.py's tie test).
-_UNSURE_Z = 3.0
+# A support point is "unsure" when the two-sided confidence interval of this level for the
+# difference between its statistic and the observed one contains zero. A point placed on the wrong
+# side with confidence moves the p-value by its whole probability, far outside p +/- 1.96 MCSE, so
+# the ranking gets a small share of the 5% that those intervals may miss: 99% intervals leave it
+# at most 0.5% per point near the observed value (a point on the wrong side half the time when it
+# escapes; Bonferroni's split of the miss rate between the ranking and the indicator's error).
+_UNSURE_LEVEL = 0.99
 
 
 def _unsure_points(result, batch_diffs: list, dist: ConditionalDistribution) -> np.ndarray:
@@ -422,47 +435,79 @@ def _unsure_points(result, batch_diffs: list, dist: ConditionalDistribution) -> 
 
     Tests that rank points by quantities estimated from the draws (moments, point probabilities,
     the likelihood's supremum) can put a point that nearly ties the observed value on either side;
-    the indicator's error cannot show that jump. The difference ``stat(u) - stat(t)`` is computed
-    on every batch; its spread over B batches, divided by sqrt(B), is the standard error of the
-    full run's difference (batch means). Points within ``_UNSURE_Z`` such errors of zero are
-    unsure.
+    the indicator's error cannot show that jump. The difference ``d(u) = stat(u) - stat(t)`` is
+    computed on each of B batches of the draws; with ``s`` the standard deviation of its finite
+    batch values (B' of them), ``s / sqrt(B')`` is the standard error of the full run's difference,
+    and ``d / (s / sqrt(B'))`` is approximately Student t with B' - 1 degrees of freedom however
+    long the batches (the fixed-number-of-batches result of Schmeiser 1982, Glynn & Iglehart
+    1990). A point is unsure when ``|d| < t_{B'-1} s / sqrt(B')`` at ``_UNSURE_LEVEL``: its 99%
+    confidence interval holds zero, so the draws do not say on which side of the observed value
+    it lies. A batch in which the point or the observed value was never drawn gives an infinite
+    or undefined difference and is left out for that point; a point with fewer than two finite
+    batch values is never unsure.
+
+    The rule is Schmeiser's t interval rather than a robust scale (1.4826 times the median
+    absolute deviation) with a fixed band: the t interval has a stated level, and on 10 batches
+    the median absolute deviation has only about a third of the efficiency of the standard
+    deviation, so its band had to be wide for the same protection. The standard errors were
+    checked on two of ``benchmarks/calibration.py``'s designs (Markov chains, 4,000 draws): over
+    60 and 200 runs their mean was within 6% of the spread of the full runs' differences.
+
+    References
+    ----------
+    .. [1] Schmeiser, B. (1982). Batch size effects in the analysis of simulation output.
+       *Operations Research* 30(3), 556-568.
+    .. [2] Glynn, P. W. & Iglehart, D. L. (1990). Simulation output analysis using standardized
+       time series. *Mathematics of Operations Research* 15(1), 1-16.
     """
+    from scipy import stats
+
     unsure = np.zeros(dist.n_points, dtype=bool)
     if len(batch_diffs) < 2 or result.values is None:
         return unsure
     diffs = np.asarray(batch_diffs, float)
-    # Spread by the scaled median absolute deviation (1.4826 MAD estimates a normal sd): a batch in
-    # which the observed value was barely drawn gives a wild statistic, which must not make every
-    # point look unsure.
-    with np.errstate(invalid="ignore"):
-        centre = np.nanmedian(diffs, axis=0)
-        se = 1.4826 * np.nanmedian(np.abs(diffs - centre), axis=0) / np.sqrt(diffs.shape[0])
+    finite = np.isfinite(diffs)
+    count = finite.sum(axis=0)
+    usable = count >= 2
+    if not usable.any():
+        return unsure
+    safe = np.where(finite, diffs, 0.0)
+    n = np.maximum(count, 1)
+    mean = safe.sum(axis=0) / n
+    square = np.where(finite, (diffs - mean) ** 2, 0.0).sum(axis=0)
+    se = np.full(dist.n_points, np.nan)
+    se[usable] = np.sqrt(square[usable] / (count[usable] - 1) / count[usable])
+    band = np.full(dist.n_points, np.nan)
+    band[usable] = stats.t.ppf(0.5 + _UNSURE_LEVEL / 2, count[usable] - 1) * se[usable]
     full = result.values - result.observed_value
     with np.errstate(invalid="ignore"):
-        unsure = np.abs(full) < _UNSURE_Z * se
-    unsure &= np.isfinite(se) & (se > 0)
+        unsure = np.abs(full) < band
+    unsure &= usable & (se > 0) & np.isfinite(full)
     if dist.observed_index is not None:
         unsure[dist.observed_index] = False
     return unsure
 
 
 def _test_mcse(indicator_mcse: float, batch_values: list, full_value: float) -> float:
-    """A Monte Carlo p-value's error: the larger of the indicator's error and the error of the
-    p-value re-computed on batches, widened by an estimate of the plug-in bias.
+    """A Monte Carlo p-value's error once its support points are ranked: the error of the mean of
+    its indicator over the draws.
 
-    A test that orders the support by quantities estimated from the draws (moments, point
-    probabilities) is biased by about c / N; on B batches of N / B draws the bias is about
-    B c / N, so ``(mean of batch values - full value) / (B - 1)`` estimates the full run's bias
-    (the jackknife idea, Quenouille 1956). It is added in quadrature, so the error bar also covers
-    what more draws of the same kind would still move.
+    With the ranking fixed (unsure points counted half, see :func:`_unsure_points`), a Monte Carlo
+    p-value is exactly the mean over the draws of ``values[point]``, so its error is
+    :func:`mcexact.montecarlo.mcse_of_indicator`'s; the ranking's own uncertainty is the half
+    probability of the unsure points, which :func:`_test_rows` adds in quadrature. The spread of
+    the p-value re-computed on B batches is used only when the indicator's error is unknown
+    (NaN). It is not a further error term: a batch holds N / B draws, so its ranking is estimated
+    with sqrt(B) times the full run's noise, and a point that the full run places safely crosses
+    the observed value in some batches; the spread then measures the batches' ranking errors, not
+    the full run's (in ``benchmarks/calibration.py`` it doubled the reported error of the
+    matched-set design, whose p +/- 1.96 MCSE then covered the exact p-value in 99-99.5% of runs).
+    For the same reason no jackknife bias term (Quenouille 1956) is added: the bias of a ranking
+    by estimated quantities is not of order 1 / N.
     """
-    spread = _batch_mcse(batch_values)
-    base = np.nanmax([indicator_mcse, spread])
-    vals = np.asarray(batch_values, float)
-    if vals.shape[0] >= 2 and np.all(np.isfinite(vals)):
-        bias = (vals.mean() - full_value) / (vals.shape[0] - 1)
-        base = float(np.sqrt(base ** 2 + bias ** 2))
-    return float(base)
+    if np.isfinite(indicator_mcse):
+        return float(indicator_mcse)
+    return _batch_mcse(batch_values)
 
 
 def _batch_mcse(values: list) -> float:
@@ -618,13 +663,16 @@ def _test_rows(effect: str, dist: ConditionalDistribution, engine: str,
 
 
 def _weights_ess(piece: ConditionalDistribution, b: float) -> float:
-    """Effective number of the draws behind tilted quantities at b: (sum w)^2 / sum w^2."""
+    """Effective number of the draws behind tilted quantities at b: (sum w)^2 / sum w^2, with
+    importance weights w = p_b / f of the b-tilted target over the distribution f the draws came
+    from (their frequencies), so the null draws and draws tilted elsewhere are judged alike."""
     counts = np.bincount(np.concatenate(piece.chain_index), minlength=piece.n_points)
+    drawn = counts > 0
     col = piece.support[:, 0].astype(float)
-    lw = b * col
-    lw = lw - lw[counts > 0].max()
-    w = np.exp(lw) * (counts > 0)
-    return float((counts @ w) ** 2 / max(counts @ (w * w), 1e-300))
+    lw = piece.log_weights[drawn] + b * col[drawn] - np.log(counts[drawn])
+    w = np.exp(lw - lw.max())
+    c = counts[drawn]
+    return float((c @ w) ** 2 / max(c @ (w * w), 1e-300))
 
 
 # Refine by tilted sampling when fewer than this share of the draws effectively support a limit
@@ -650,6 +698,11 @@ def _refine_by_tilting(piece, e, k, others, tilter, alpha, n_draws):
     for name, b, which, target in wanted:
         if not np.isfinite(b) or _weights_ess(piece, b) >= _TILT_ESS_SHARE * piece.n_draws:
             continue
+        if name == "estimate" and not piece.iid:
+            # Markov chains: re-solving the estimate from tilted chains was not better calibrated
+            # than the null chains' estimate on enumerable subsets of the sparse demo (RMS z 2.0
+            # against 1.5 over 9 runs), while the limits improved (RMS z 0.8 against 3.5).
+            continue
         goal = t if which == "mean" else target
         b_try = b
         # A value estimated from thin null draws can be far off, and a tilt too far from the
@@ -664,7 +717,8 @@ def _refine_by_tilting(piece, e, k, others, tilter, alpha, n_draws):
                  "mean": tcol}[which]
             value = _local_root(tp, b_try, h, goal)
             if np.isfinite(value):
-                out[name] = (value, _root_mcse(tp, value, h, goal))
+                out[name] = (value, max(_root_mcse(tp, value, h, goal),
+                                        _chain_root_spread(tp, b_try, h, goal)))
                 refined.append(name)
                 if name == "estimate":
                     anchor = value
@@ -673,6 +727,23 @@ def _refine_by_tilting(piece, e, k, others, tilter, alpha, n_draws):
     note = ("refined by sampling the distribution tilted to it: " + ", ".join(refined)
             if refined else "")
     return out, note
+
+
+def _chain_root_spread(piece: ConditionalDistribution, b0: float, h: np.ndarray,
+                       target: float) -> float:
+    """For Markov chains: the standard error of a root from its spread over the chains (the root
+    re-solved on each chain's draws alone; chain re-estimation), ``sd / sqrt(chains)``. Chains
+    that do not mix give different roots, which the delta-method error of the pooled draws cannot
+    show. 0 for independent draws; NaN if some chain gives no root."""
+    import dataclasses
+
+    if piece.iid or piece.chain_index is None or len(piece.chain_index) < 2:
+        return 0.0
+    roots = [_local_root(dataclasses.replace(piece, chain_index=(idx,)), b0, h, target)
+             for idx in piece.chain_index]
+    if not np.all(np.isfinite(roots)):
+        return np.nan
+    return float(np.std(roots, ddof=1) / np.sqrt(len(roots)))
 
 
 def _local_root(piece: ConditionalDistribution, b0: float, h: np.ndarray, target: float) -> float:
@@ -709,66 +780,134 @@ def _local_root(piece: ConditionalDistribution, b0: float, h: np.ndarray, target
     return float(b0 + d / sd)
 
 
+def _estimate_values(e, s: float) -> dict:
+    """The estimate, limit and odds-ratio columns of an estimates row, per original unit."""
+    return {"estimate": e.estimate * s, "kind": e.kind, "ci_lower": e.ci_lower * s,
+            "ci_upper": e.ci_upper * s, "odds_ratio": np.exp(e.estimate * s),
+            "or_ci_lower": np.exp(e.ci_lower * s), "or_ci_upper": np.exp(e.ci_upper * s),
+            "cmle": e.cmle * s, "median_unbiased": e.median_unbiased * s}
+
+
+def _join(*notes: str) -> str:
+    return "; ".join(n for n in notes if n)
+
+
+def _observed_draws(piece: ConditionalDistribution) -> int:
+    """How often the draws of a Monte Carlo distribution hit the observed statistic."""
+    if piece.observed_index is None:
+        return 0
+    return int(sum(np.count_nonzero(c == piece.observed_index) for c in piece.chain_index))
+
+
+def _tilt_to_observed(piece: ConditionalDistribution, k: int, others: list, tilter,
+                      tries: int = 4):
+    """Draws of the distribution tilted so that the observed statistic, never drawn under the
+    null, is typical: beta from Newton steps on the cumulant function, ``beta += (t - mean_beta) /
+    var_beta`` with the moments of the latest draws (the tilted mean of T is the derivative of
+    the cumulant function, its variance the second derivative). Returns the (conditioned) tilted
+    distribution once it holds the observed value, or None."""
+    t = float(piece.observed[0])
+    b, current = 0.0, piece
+    for _ in range(tries):
+        counts = np.bincount(np.concatenate(current.chain_index), minlength=current.n_points)
+        col = current.support[:, 0].astype(float)
+        f = counts / counts.sum()
+        mean = float(f @ col)
+        var = float(f @ (col - mean) ** 2)
+        if var <= 0:
+            # All draws at one value: step by one unit of the coded scale towards t.
+            var = 1.0
+        b += (t - mean) / var
+        beta = np.zeros(len(others) + 1)
+        beta[k] = b
+        tilted = tilter(beta)
+        current = tilted.condition(others) if others else tilted
+        if _observed_draws(current) > 0:
+            return current
+    return None
+
+
 def _estimate_row(term, effect, piece: ConditionalDistribution, scale: float, alpha: float,
                   engine: str, tilter=None, k: int = 0, others=(), n_draws: int = 0,
                   convergence: tuple | None = None) -> dict:
     e = column_inference(piece, alpha)
     s = scale
     row = {
-        "term": term, "effect": effect, "estimate": e.estimate * s, "kind": e.kind,
-        "ci_lower": e.ci_lower * s, "ci_upper": e.ci_upper * s,
-        "odds_ratio": np.exp(e.estimate * s), "or_ci_lower": np.exp(e.ci_lower * s),
-        "or_ci_upper": np.exp(e.ci_upper * s), "p_value": e.p_two_sided,
+        "term": term, "effect": effect, **_estimate_values(e, s), "p_value": e.p_two_sided,
         "mid_p_value": e.mid_p_two_sided, "p_lower": e.p_lower, "p_upper": e.p_upper,
-        "cmle": e.cmle * s, "median_unbiased": e.median_unbiased * s,
         "observed": int(piece.observed[0]), "n_points": e.n_points, "engine": engine,
         "mcse": 0.0, "mcse_ci_lower": 0.0, "mcse_ci_upper": 0.0, "mcse_p_value": 0.0,
         "n_draws": piece.n_draws, "ess": np.nan, "rhat": np.nan, "verdict": "",
         "draws_needed": np.nan, "note": e.note}
-    if piece.is_monte_carlo:
-        t = int(piece.observed[0])
-        col = piece.support[:, 0].astype(float)
-        le, ge = (col <= t).astype(float), (col >= t).astype(float)
-        smaller = le if e.p_lower <= e.p_upper else ge
-        row["mcse_p_value"] = min(1.0, 2 * mcse_of_indicator(piece, smaller))
-        if convergence is not None:
-            conv = _convergence(piece, smaller, min(e.p_lower, e.p_upper),
-                                row["mcse_p_value"] / 2, convergence[0] / 2, convergence[1])
-            row.update(conv)
-        if e.kind == "cmle":
-            row["mcse"] = s * _root_mcse(piece, e.estimate, col, t)
-        elif e.kind == "median_unbiased":
-            h = ge if e.at_edge == "upper" else le
-            row["mcse"] = s * _root_mcse(piece, e.estimate, h, 0.5)
-        else:
-            row["mcse"] = np.nan
-        row["mcse_ci_lower"] = s * _root_mcse(piece, e.ci_lower, ge, alpha / 2)
-        row["mcse_ci_upper"] = s * _root_mcse(piece, e.ci_upper, le, alpha / 2)
-        drawn = 0
-        if piece.observed_index is not None:
-            drawn = int(sum(np.count_nonzero(c == piece.observed_index)
-                            for c in piece.chain_index))
-        if drawn == 0:
-            # Never drawn: the observed value lies beyond every value drawn, so it looks like an
-            # edge of the support and the estimate and a limit come out infinite, which the exact
-            # distribution need not say. No error estimate covers that.
-            row["verdict"] = ("not quotable: the observed statistic was never drawn, so the "
-                              "estimate and limits are only bounded by the values drawn")
-            row["draws_needed"] = np.nan
-        if tilter is not None:
-            better, note = _refine_by_tilting(piece, e, k, list(others), tilter, alpha, n_draws)
-            for name, (value, err) in better.items():
-                mcse_col = "mcse" if name == "estimate" else f"mcse_{name}"
-                row[name] = value * s
-                row[mcse_col] = err * s
-                if name == "estimate":
-                    row["odds_ratio"] = np.exp(value * s)
-                    row["cmle" if e.kind == "cmle" else "median_unbiased"] = value * s
-                else:
-                    row["or_" + name] = np.exp(value * s)
-            if note:
-                row["note"] = (row["note"] + "; " if row["note"] else "") + note
+    if not piece.is_monte_carlo:
+        return row
+    t = int(piece.observed[0])
+    col = piece.support[:, 0].astype(float)
+    le, ge = (col <= t).astype(float), (col >= t).astype(float)
+    smaller = le if e.p_lower <= e.p_upper else ge
+    row["mcse_p_value"] = min(1.0, 2 * mcse_of_indicator(piece, smaller))
+    if convergence is not None:
+        conv = _convergence(piece, smaller, min(e.p_lower, e.p_upper),
+                            row["mcse_p_value"] / 2, convergence[0] / 2, convergence[1])
+        row.update(conv)
+    drawn = _observed_draws(piece)
+    # An edge of the values drawn is an edge of the support only where the exact range says so
+    # (the direct engine knows it); otherwise values beyond may exist that the null draws missed.
+    bound = None
+    if e.kind == "median_unbiased" and piece.n_columns == 1:
+        bound = piece.support_max if e.at_edge == "upper" else piece.support_min
+    unconfirmed_edge = e.kind == "median_unbiased" and (bound is None or int(bound[0]) != t)
+    if (drawn == 0 or unconfirmed_edge) and tilter is not None and e.kind != "none":
+        tilted = _tilt_to_observed(piece, k, list(others), tilter)
+        if tilted is not None:
+            # Estimate and limits from draws of the distribution tilted to the observed value
+            # (reweighted to the null); the p-values above stay those of the null draws.
+            why = ("was never drawn under the null" if drawn == 0 else
+                   "was at the edge of the values drawn under the null")
+            piece, e = tilted, column_inference(tilted, alpha)
+            row.update(_estimate_values(e, s))
+            row["note"] = _join(e.note, f"the observed statistic {why}: estimate and limits "
+                                "from draws tilted to it")
+            col = piece.support[:, 0].astype(float)
+            le, ge = (col <= t).astype(float), (col >= t).astype(float)
+            drawn = _observed_draws(piece)
+    if e.kind == "cmle":
+        row["mcse"] = s * _root_error(piece, e.estimate, col, t)
+    elif e.kind == "median_unbiased":
+        h = ge if e.at_edge == "upper" else le
+        row["mcse"] = s * _root_error(piece, e.estimate, h, 0.5)
+    else:
+        row["mcse"] = np.nan
+    row["mcse_ci_lower"] = s * _root_error(piece, e.ci_lower, ge, alpha / 2)
+    row["mcse_ci_upper"] = s * _root_error(piece, e.ci_upper, le, alpha / 2)
+    if drawn == 0:
+        # Never drawn: the observed value lies beyond every value drawn, so it looks like an edge
+        # of the support and the estimate and a limit come out infinite, which the exact
+        # distribution need not say. No error estimate covers that.
+        row["verdict"] = ("not quotable: the observed statistic was never drawn, so the "
+                          "estimate and limits are only bounded by the values drawn")
+        row["draws_needed"] = np.nan
+    elif tilter is not None:
+        better, note = _refine_by_tilting(piece, e, k, list(others), tilter, alpha, n_draws)
+        for name, (value, err) in better.items():
+            mcse_col = "mcse" if name == "estimate" else f"mcse_{name}"
+            row[name] = value * s
+            row[mcse_col] = err * s
+            if name == "estimate":
+                row["odds_ratio"] = np.exp(value * s)
+                row["cmle" if e.kind == "cmle" else "median_unbiased"] = value * s
+            else:
+                row["or_" + name] = np.exp(value * s)
+        row["note"] = _join(row["note"], note)
     return row
+
+
+def _root_error(piece: ConditionalDistribution, b: float, h: np.ndarray, target) -> float:
+    """The larger of the delta-method error of a root and, for chains, its spread over chains."""
+    err = _root_mcse(piece, b, h, target)
+    if not np.isfinite(b) or piece.iid or piece.chain_index is None:
+        return err
+    return float(np.nanmax([err, _chain_root_spread(piece, b, h, target)]))
 
 
 def _root_mcse(piece: ConditionalDistribution, b: float, h: np.ndarray, target) -> float:
@@ -937,14 +1076,16 @@ def _analyse(design: Design, settings: dict, seeds: dict, precision: Precision,
                          "it started (extend the run to compute it)")
             continue
         effect_dists[effect] = dist
-        test_rows += _test_rows(effect, dist, info["engine"], (alpha, target_mcse))
+        rows = _test_rows(effect, dist, info["engine"], (alpha, target_mcse))
+        est = []
         for k, c in enumerate(cols):
             others = [j for j in range(len(cols)) if j != k]
             piece = dist.condition(others) if others else dist
-            estimate_rows.append(_estimate_row(names[c], effect, piece, scales[c], alpha,
-                                               info["engine"], tilter if tilted else None, k,
-                                               others, settings["n_draws"],
-                                               (alpha, target_mcse)))
+            est.append(_estimate_row(names[c], effect, piece, scales[c], alpha, info["engine"],
+                                     tilter if tilted else None, k, others, settings["n_draws"],
+                                     (alpha, target_mcse)))
+        test_rows += _flag_frozen(info, rows)
+        estimate_rows += _flag_frozen(info, est)
 
     # Joint distribution of all interest columns.
     joint_estimate = None
@@ -967,7 +1108,9 @@ def _analyse(design: Design, settings: dict, seeds: dict, precision: Precision,
             joint = None
             notes.append(f"the joint test was not computed: {exc}")
     if joint is not None:
-        test_rows += _test_rows("joint", joint, parts["joint"]["engine"], (alpha, target_mcse))
+        test_rows += _flag_frozen(parts["joint"], _test_rows("joint", joint,
+                                                             parts["joint"]["engine"],
+                                                             (alpha, target_mcse)))
         b = joint_cmle(joint)
         if b is None:
             notes.append("the joint conditional MLE does not exist: the observed statistics lie "
@@ -1005,6 +1148,20 @@ def _analyse(design: Design, settings: dict, seeds: dict, precision: Precision,
     run = {"settings": settings, "seeds": seeds, "parts": records}
     return FitResult(design, tests, estimates, joint_estimate, joint, effect_dists, method_info,
                      comparison, alpha, notes, interrupt.set, run)
+
+
+def _flag_frozen(info: dict, rows: list) -> list:
+    """Rows of a Markov chain part whose moves never changed the response: all chains sat at the
+    observed data, so they agree trivially and say nothing about the distribution."""
+    if info.get("engine") != "mcmc" or info.get("changed_share", 1) > 0:
+        return rows
+    for row in rows:
+        row["verdict"] = ("not converged: no move of the chains changed the response; the "
+                          "conditional distribution may be a single point, or the moves cannot "
+                          "reach the rest of it (check with method='enumerate' on a smaller "
+                          "version of the design)")
+        row["draws_needed"] = np.nan
+    return rows
 
 
 def _seed_copy(seed: np.random.SeedSequence) -> np.random.SeedSequence:

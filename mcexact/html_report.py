@@ -39,13 +39,13 @@ import json
 import os
 import pathlib
 import sys
-import tempfile
 import warnings
 from typing import Callable, Iterable
 
 import numpy as np
 import pandas as pd
 
+from mcexact._files import write_text_atomic
 from mcexact._exceptions import DataError
 from mcexact.report import format_number
 
@@ -707,18 +707,5 @@ def write_text_atomically(text: str, path) -> pathlib.Path:
     folder = target.resolve().parent
     if not folder.is_dir():
         raise DataError(f"cannot write {str(target)!r}: folder {str(folder)!r} does not exist")
-    fd, tmp = tempfile.mkstemp(prefix=".mcexact-", suffix=".html.tmp", dir=folder)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)      # mkstemp creates 0600; give the usual mode
-        os.replace(tmp, target)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    write_text_atomic(target, text)
     return target

@@ -7,8 +7,10 @@ values (kernels in ``mcexact/_sampler.pyx``):
   Senchaudhuri 2000); needs the nuisance network to fit the node budget; can sample a tilted
   target ``exp(beta . t)`` as well.
 - ``"mcmc"``: Markov chains on response vectors, with swap moves when the nuisance is only the
-  intercept and/or strata, and exact block (Gibbs) moves for integer nuisance columns otherwise;
-  starts at the observed response, discards ``n_warmup`` moves and records every ``thin``-th.
+  intercept and/or strata, and exact block (Gibbs) moves for integer nuisance columns otherwise
+  (some of them across two strata); starts at the observed response, runs the first half of the
+  ``n_warmup`` discarded moves under a tilt that differs between chains (overdispersed starts,
+  Gelman & Rubin 1992) and the rest at the target, then records every ``thin``-th move.
 
 Chains run through ``joblib.Parallel`` (threads by default: the kernels release the GIL; any joblib
 backend, including ``"dask"`` for a dask.distributed cluster, runs the same chains). Each chain has
@@ -357,17 +359,88 @@ def default_block_size(n_nuisance: int) -> int:
     return int(min(_sampler.MAX_BLOCK, max(8, 6 + 2 * n_nuisance)))
 
 
-def _block_worker(arrays, y0, n, seed, block_size, warmup, thin, state=None):
+# Block moves: of every 4, this many take the block from `_N_CROSS` distinct strata (fixed strata
+# only), and each stratum's part of a block starts at a random trial of its rarer outcome
+# (`_ANCHORED`; see `fill_from` in _sampler.pyx). Chain starts: with two or more fresh chains, the
+# first `_TILTED_WARMUP_SHARE` of the warm-up runs under a tilt that differs between chains, so
+# that they start in regions of T spread over +/- `_START_SPREAD` null standard deviations.
+# benchmarks/bench_mixing.py sets these to 0 / False to measure the earlier sampler.
+_CROSS_QUARTERS = 2
+_N_CROSS = 2
+_ANCHORED = True
+_START_SPREAD = 2.0
+_TILTED_WARMUP_SHARE = 0.5
+
+
+def _strata_sd(rc) -> np.ndarray:
+    """Null standard deviation of each interest statistic given the strata alone, by the normal
+    approximation of the score variance (coded scale of `rc`): sum over strata of
+    ``D (N - D) / (N - 1)`` times the variance of z over the stratum's N trials, D of them events;
+    without fixed strata, ``sum m p (1 - p) z^2`` with the overall event rate p. Conditioning on
+    the other nuisance terms only lowers it on average, so it is a cheap upper scale for spreading
+    the chains' starts."""
+    m = rc.trials.astype(float)
+    z = rc.interest.astype(float)
+    y = rc.events.astype(float)
+    if not rc.fixed:
+        p = min(max(y.sum() / max(m.sum(), 1.0), 1e-3), 1 - 1e-3)
+        return np.sqrt(np.maximum((m[:, None] * z ** 2).sum(axis=0) * p * (1 - p), 0.0))
+    var = np.zeros(z.shape[1])
+    for a, b in zip(rc.starts, rc.ends):
+        n_h, d_h = m[a:b].sum(), y[a:b].sum()
+        if n_h < 2 or d_h == 0 or d_h == n_h:
+            continue
+        mean = m[a:b] @ z[a:b] / n_h
+        s2 = m[a:b] @ (z[a:b] - mean) ** 2 / n_h
+        var += d_h * (n_h - d_h) / (n_h - 1) * s2
+    return np.sqrt(var)
+
+
+def _start_tilts(rc, n_chains: int, spread: float) -> np.ndarray:
+    """Per chain, a tilt b (coded scale of `rc`, shape (n_chains, q)) that moves the null mean of
+    each statistic by about s standard deviations, s spread evenly over [-spread, spread] across
+    the chains (shifted by one chain per further column, so the chains also differ in direction):
+    overdispersed starting points for the chains (Gelman & Rubin 1992), reached by running part of
+    the warm-up under that tilt. By the normal approximation a tilt b moves the mean by
+    ``b Var(T)``, so ``b = s / sd``."""
+    sd = _strata_sd(rc)
+    q = sd.shape[0]
+    steps = (np.linspace(-spread, spread, n_chains) if n_chains > 1 else np.zeros(1))
+    out = np.zeros((n_chains, q))
+    for j in range(q):
+        if sd[j] > 0:
+            out[:, j] = np.roll(steps, -j) / sd[j]
+    return out
+
+
+def _block_worker(arrays, y0, n, seed, block_size, warmup, thin, state=None, start_theta=None,
+                  n_tilt=0, moves=None):
+    """One block-move chain: `n` records after `warmup` moves, of which the first `n_tilt` (fresh
+    chains) run under the per-group tilt `start_theta`. `moves` = (cross quarters, strata per
+    cross move, anchored), see run_chain (default: this module's settings). Returns the records, [moves, changed, skipped], the end
+    state y, the bit generator state, None (no swap units), T after the tilted warm-up and
+    [cross-strata moves, of which changed y]."""
+    if moves is None:
+        moves = (int(_CROSS_QUARTERS), int(_N_CROSS), bool(_ANCHORED))
     bg = np.random.PCG64(seed)
     if state is not None:
         bg.state = state
     y = np.array(y0, dtype=np.int64, copy=True)
-    out = np.empty((n, arrays["z"].shape[1]), dtype=np.int64)
-    counters = np.zeros(3, dtype=np.int64)
-    _sampler.run_chain(bg, y, arrays["m"], arrays["z"], arrays["w"], arrays["stratum"],
-                       arrays["start"], arrays["size"], arrays["theta"], arrays["log_fact"],
-                       arrays["fixed"], block_size, warmup, thin, out, counters)
-    return out, counters, y, bg.state, None
+    q = arrays["z"].shape[1]
+    out = np.empty((n, q), dtype=np.int64)
+    counters = np.zeros(5, dtype=np.int64)
+    common = (arrays["m"], arrays["z"], arrays["w"], arrays["stratum"], arrays["start"],
+              arrays["size"])
+    if start_theta is not None and 0 < n_tilt <= warmup and n > 0:
+        # n_tilt moves: n_tilt - 1 of warm-up, then one recorded into a scratch row.
+        _sampler.run_chain(bg, y, *common, np.ascontiguousarray(start_theta, float),
+                           arrays["log_fact"], arrays["fixed"], block_size, n_tilt - 1, 1,
+                           np.empty((1, q), dtype=np.int64), counters, *moves)
+        warmup -= n_tilt
+    start_T = (y @ arrays["z"]).astype(np.int64)
+    _sampler.run_chain(bg, y, *common, arrays["theta"], arrays["log_fact"], arrays["fixed"],
+                       block_size, warmup, thin, out, counters, *moves)
+    return out, counters[:3].copy(), y, bg.state, None, start_T, counters[3:].copy()
 
 
 def _units(arrays, y):
@@ -385,7 +458,9 @@ def _units(arrays, y):
             "non_count": np.bincount(stratum[non], minlength=H).astype(np.int64)}
 
 
-def _swap_worker(arrays, y0, n, seed, warmup, thin, state=None, units=None):
+def _swap_worker(arrays, y0, n, seed, warmup, thin, state=None, units=None, start_theta=None,
+                 n_tilt=0):
+    """One swap chain, with the same tilted start and returns as `_block_worker`."""
     bg = np.random.PCG64(seed)
     if state is not None:
         bg.state = state
@@ -394,14 +469,22 @@ def _swap_worker(arrays, y0, n, seed, warmup, thin, state=None, units=None):
     ev_start = np.r_[0, np.cumsum(u["ev_count"])[:-1]].astype(np.int64)
     non_start = np.r_[0, np.cumsum(u["non_count"])[:-1]].astype(np.int64)
     informative = np.flatnonzero((u["ev_count"] > 0) & (u["non_count"] > 0)).astype(np.int64)
-    out = np.empty((n, arrays["z"].shape[1]), dtype=np.int64)
+    q = arrays["z"].shape[1]
+    out = np.empty((n, q), dtype=np.int64)
     counters = np.zeros(3, dtype=np.int64)
+    lists = (u["ev_group"], u["ev_z"], u["non_group"], u["non_z"], ev_start, u["ev_count"],
+             non_start, u["non_count"], informative)
+    if start_theta is not None and 0 < n_tilt <= warmup and n > 0:
+        start_theta = np.ascontiguousarray(start_theta, float)
+        _sampler.run_unit_swaps(bg, *lists, start_theta, bool(np.any(start_theta != 0)), u["T"],
+                                n_tilt - 1, 1, np.empty((1, q), dtype=np.int64), counters)
+        warmup -= n_tilt
+    start_T = u["T"].copy()
     theta = arrays["theta"]
-    _sampler.run_unit_swaps(bg, u["ev_group"], u["ev_z"], u["non_group"], u["non_z"], ev_start,
-                            u["ev_count"], non_start, u["non_count"], informative, theta,
-                            bool(np.any(theta != 0)), u["T"], warmup, thin, out, counters)
+    _sampler.run_unit_swaps(bg, *lists, theta, bool(np.any(theta != 0)), u["T"], warmup, thin,
+                            out, counters)
     y = np.bincount(u["ev_group"], minlength=arrays["m"].shape[0]).astype(np.int64)
-    return out, counters, y, bg.state, u
+    return out, counters, y, bg.state, u, start_T, np.zeros(2, dtype=np.int64)
 
 
 def _parallel(options: SamplerOptions):
@@ -460,6 +543,21 @@ def draw_mcmc(design, options: SamplerOptions, seeds, beta=None, continue_from=N
         (no new warm-up), so that the draws equal those of one longer run.
     sizes : list of int, optional
         Draws per chain (default: ``options.per_chain()``).
+
+    Notes
+    -----
+    Fresh chains (two or more) start overdispersed (Gelman & Rubin 1992): the first half of the
+    warm-up runs under a per-chain tilt (`_start_tilts`, spread over +/- 2 null standard
+    deviations of T given the strata), the second half at the null or at `beta`, so chains that
+    do not mix stay apart and R-hat and the chain-agreement test see it. ``info`` records
+    ``start_tilts`` (per chain, coded scale of the user's statistics, added to `beta`),
+    ``tilted_warmup`` (moves) and ``start_statistics`` (T after the tilted moves).
+    Continuations take no tilt.
+
+    References
+    ----------
+    .. [1] Gelman, A. & Rubin, D. B. (1992). Inference from iterative simulation using multiple
+       sequences. *Statistical Science* 7(4), 457-472.
     """
     t0 = time.perf_counter()
     rc = recode(design)
@@ -483,77 +581,215 @@ def draw_mcmc(design, options: SamplerOptions, seeds, beta=None, continue_from=N
     seeds = _check_seeds(seeds, options)
     _check_continuation(continue_from, "mcmc", key, options, beta)
     sizes = options.per_chain() if sizes is None else [int(s) for s in sizes]
+    start_info = {}
     if continue_from is not None:
         starts = [s["y"] for s in continue_from.states]
         states = [s["bit_generator"] for s in continue_from.states]
         units = [s.get("units") for s in continue_from.states]
         warmup = 0
+        start_thetas, n_tilt = [None] * len(sizes), 0
     else:
         starts = [rc.events] * len(sizes)
         states = [None] * len(sizes)
         units = [None] * len(sizes)
         warmup = int(options.n_warmup)
+        # Overdispersed starts (Gelman & Rubin 1992), for fresh chains only: a continuation
+        # carries on from its saved states, so it stays exactly one longer run.
+        n_tilt = (int(warmup * _TILTED_WARMUP_SHARE)
+                  if len(sizes) > 1 and _START_SPREAD > 0 else 0)
+        start_thetas = [None] * len(sizes)
+        if n_tilt > 0:
+            tilts = _start_tilts(rc, len(sizes), _START_SPREAD)
+            start_thetas = [theta + rc.interest @ b for b in tilts]
+            start_info = {"start_tilts": (tilts / rc.step).tolist(), "tilted_warmup": n_tilt}
     config, parallel = _parallel(options)
     thin = int(options.thin)
+    moves = (int(_CROSS_QUARTERS), int(_N_CROSS), bool(_ANCHORED))
     with config:
         if swap:
             results = parallel(
-                delayed(_swap_worker)(arrays, y0, n, seed, warmup, thin, st, un)
-                for y0, n, seed, st, un in zip(starts, sizes, seeds, states, units))
+                delayed(_swap_worker)(arrays, y0, n, seed, warmup, thin, st, un, th, n_tilt)
+                for y0, n, seed, st, un, th in zip(starts, sizes, seeds, states, units,
+                                                   start_thetas))
         else:
             results = parallel(
-                delayed(_block_worker)(arrays, y0, n, seed, block, warmup, thin, st)
-                for y0, n, seed, st in zip(starts, sizes, seeds, states))
+                delayed(_block_worker)(arrays, y0, n, seed, block, warmup, thin, st, th, n_tilt,
+                                       moves)
+                for y0, n, seed, st, th in zip(starts, sizes, seeds, states, start_thetas))
     chains = [r[0] * rc.step + rc.offset for r in results]
+    if n_tilt > 0:
+        # The statistics where the chains stood after the tilted part of the warm-up.
+        start_info["start_statistics"] = [(r[5] * rc.step + rc.offset).tolist() for r in results]
+    moments = stratified_moments(design) if swap and beta_arr is None else (None, None)
     return Sample("mcmc", chains, np.asarray(design.observed_interest, np.int64),
                   tuple(design.interest_names), np.asarray(design.interest_scales, float),
                   beta=beta_arr, counters=[r[1] for r in results],
                   states=[{"y": r[2], "bit_generator": r[3], "units": r[4]}
                           for r in results],
                   seconds=time.perf_counter() - t0,
+                  null_mean=moments[0], null_cov=moments[1],
                   info={"move": "swap" if swap else "block",
                         "block_size": None if swap else block,
-                        "thin": int(options.thin), "n_warmup": warmup, "design_key": key})
+                        "thin": int(options.thin), "n_warmup": warmup, "design_key": key,
+                        **start_info})
+
+
+def stratified_moments(design) -> tuple[np.ndarray, np.ndarray]:
+    """Exact null mean and covariance of T = Z'y given the events of every stratum (intercept or
+    strata the only nuisance terms): within stratum h, the k_h events fall on k_h of its n_h
+    trials drawn without replacement, so (the moments of a sample sum from a finite population)
+    ``E T = sum_h k_h zbar_h`` and ``Cov T = sum_h k_h (n_h - k_h) / (n_h (n_h - 1)) S_h`` with
+    S_h the scatter ``sum_i m_i (z_i - zbar_h)(z_i - zbar_h)'`` of the stratum's trials. Used so
+    that the chains' score test ranks the support exactly, as the direct engine's does."""
+    z = np.asarray(design.interest, float)
+    m = np.asarray(design.trials, float)
+    y = np.asarray(design.events, float)
+    q = z.shape[1]
+    mean, cov = np.zeros(q), np.zeros((q, q))
+    strata = np.asarray(design.stratum) if design.n_strata > 1 else np.zeros(z.shape[0], int)
+    for h in np.unique(strata):
+        rows = strata == h
+        n, k = m[rows].sum(), y[rows].sum()
+        if n < 2:
+            continue
+        zbar = (m[rows] @ z[rows]) / n
+        dev = z[rows] - zbar
+        mean += k * zbar
+        cov += k * (n - k) / (n * (n - 1)) * (dev.T * m[rows]) @ dev
+    return mean, cov
 
 
 # -- Monte Carlo standard errors ----------------------------------------------------------------
+
+# Pseudo-draws added at 0 and at 1 to the effective sample of a mean of values in [0, 1] before
+# its variance is taken: z^2 / 2 = 1.92 of each at the 95% level, rounded to 2 (Agresti & Coull
+# 1998, "add two successes and two failures").
+_PSEUDO_DRAWS = 2.0
+
 
 def mcse_of_indicator(dist: ConditionalDistribution, values: np.ndarray) -> float:
     """Monte Carlo standard error of the mean of ``values[point]`` over a distribution's draws.
 
     `values` gives, per support point, the quantity averaged (1 for "at least as extreme", 0.5 for
-    a tie in a mid-p-value, ...). Independent draws: ``sqrt(var / N)``. Markov chains: batch means
-    (Flegal & Jones 2010) with batches of about ``sqrt(n)`` draws in every chain, pooled over the
-    chains around the grand mean, so disagreement between chains inflates the error too.
+    a tie in a mid-p-value, ...). The error comes in two steps.
+
+    1. The effective sample size ``n_e``. Independent draws: ``n_e = N``. Markov chains: the
+       error of the mean is the larger of lugsail batch means and ``sd / sqrt(ESS)``, and
+       ``n_e = v / error^2`` with ``v`` the variance of the draws. Batch means (Flegal & Jones
+       2010) use batches of ``b = floor(sqrt(n))`` draws in every chain, pooled over the chains
+       around the grand mean, so that disagreement between chains inflates the error too; the
+       lugsail form (Vats & Flegal 2022) subtracts the larger downward bias of batches of
+       ``b / 3`` draws, which offsets the batches' own when the autocorrelation is long against
+       ``b`` (short chains). The ESS is the multi-chain initial-monotone-sequence one (Geyer
+       1992; Vehtari et al. 2021), which adapts when the autocorrelation outlasts a batch. A
+       series that is constant in every chain says nothing about its own autocorrelation: it
+       gets the autocorrelation time of the sampled statistic itself, ``n_e = N / tau_T``.
+    2. For values in [0, 1] (indicators and mid-p halves), the variance is that of the effective
+       sample with two pseudo-draws added at 0 and two at 1, ``MCSE^2 = v~ / (n_e + 4)``; for a
+       0/1 indicator with ``k`` hits that is ``p~ (1 - p~) / (n_e + 4)``, ``p~ = (k + 2) / (n_e +
+       4)``: the Agresti & Coull (1998) variance, with the effective sample size in place of the
+       number of draws as Korn & Graubard (1998) do for clustered samples. The plain
+       ``p (1 - p) / n_e`` (Wald) is too small exactly when the estimate is low by chance, which
+       matters when there are few hits (``benchmarks/calibration.py --rare``: with about 3 hits
+       expected in 4,000 independent draws it covers the exact tail in 91% of 200 runs, these
+       pseudo-draws in all of them); with hundreds of hits the two differ by well under 1%. Other values (the
+       influence terms of :func:`mcexact.fit._root_mcse`) get ``sqrt(max(v, floor) / n_e)``
+       with the floor ``1/(N + 2) (1 - 1/(N + 2))`` of one draw's resolution.
+
+    References
+    ----------
+    .. [1] Flegal, J. M. & Jones, G. L. (2010). Batch means and spectral variance estimators in
+       Markov chain Monte Carlo. *Annals of Statistics* 38(2), 1034-1070.
+    .. [2] Geyer, C. J. (1992). Practical Markov chain Monte Carlo. *Statistical Science* 7,
+       473-483.
+    .. [3] Vehtari, A., Gelman, A., Simpson, D., Carpenter, B. & Bürkner, P.-C. (2021).
+       Rank-normalization, folding, and localization: an improved R-hat for assessing
+       convergence of MCMC. *Bayesian Analysis* 16(2), 667-718.
+    .. [4] Vats, D. & Flegal, J. M. (2022). Lugsail lag windows for estimating time-average
+       covariance matrices. *Biometrika* 109(3), 735-750.
+    .. [5] Agresti, A. & Coull, B. A. (1998). Approximate is better than "exact" for interval
+       estimation of binomial proportions. *The American Statistician* 52(2), 119-126.
+    .. [6] Korn, E. L. & Graubard, B. I. (1998). Confidence intervals for proportions with small
+       expected number of positive counts estimated from survey data. *Survey Methodology*
+       24(2), 193-201.
     """
     if dist.chain_index is None:
         return 0.0
-    from mcexact.diagnostics import mcse_mean
-
-    series = [np.asarray(values, float)[idx] for idx in dist.chain_index]
+    values = np.asarray(values, float)
+    series = [values[idx] for idx in dist.chain_index]
     allv = np.concatenate(series)
     N = allv.shape[0]
     if N < 2:
         return np.nan
-    # Floor: an estimate of 0 or 1 is only known to about one draw's resolution, never exactly.
-    floor = (1.0 / (N + 2)) * (1.0 - 1.0 / (N + 2))
+    bounded = bool(np.all((allv >= 0.0) & (allv <= 1.0)))
     if dist.iid:
-        return float(np.sqrt(max(allv.var(ddof=1), floor) / N))
+        n_eff = float(N)
+    else:
+        n_eff = _chain_effective_draws(dist, series)
+        if not np.isfinite(n_eff):
+            return np.nan
+    if bounded:
+        return _pseudo_draw_mcse(float(allv.mean()), float(allv.var()), n_eff)
+    # Floor: an estimate is only known to about one draw's resolution, never exactly.
+    floor = (1.0 / (N + 2)) * (1.0 - 1.0 / (N + 2))
+    return float(np.sqrt(max(float(allv.var(ddof=1)), floor) / n_eff))
+
+
+def _chain_effective_draws(dist: ConditionalDistribution, series: list) -> float:
+    """Effective number of draws behind the mean of `series` (one array per chain): ``v / e^2``
+    with ``e`` the larger of the lugsail batch-means and ESS errors of the mean (see
+    :func:`mcse_of_indicator`); ``N / tau_T`` for a constant series; NaN below 4 draws a chain."""
+    from mcexact.diagnostics import mcse_mean
+
     # Chains differ in length by at most one draw (n_draws is shared out evenly): cut to the
-    # shortest. Batches of sqrt(n) draws are too short when the autocorrelation is long; the error
-    # from the initial-sequence effective sample size (Geyer 1992) adapts to it: report the larger.
+    # shortest.
     n_min = min(s.shape[0] for s in series)
     if n_min < 4:
         return np.nan
     chains = np.stack([s[:n_min] for s in series])
+    total = sum(s.shape[0] for s in series)
     if np.ptp(chains) == 0:
-        return float(np.sqrt(floor / N))
+        return total / _statistic_tau(dist)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        errors = [mcse_mean(chains, method="batch"), mcse_mean(chains, method="ess")]
-    errors = [e for e in errors if np.isfinite(e)]
-    return float(max(errors + [np.sqrt(floor / N)]))
+        errors = [mcse_mean(chains, method="lugsail"), mcse_mean(chains, method="ess")]
+    errors = [e for e in errors if np.isfinite(e) and e > 0]
+    if not errors:
+        return np.nan
+    return float(np.var(chains, ddof=1)) / max(errors) ** 2 * (total / chains.size)
 
+
+def _statistic_tau(dist: ConditionalDistribution) -> float:
+    """Integrated autocorrelation time of the sampled statistic (the largest over its columns,
+    from the multi-chain ESS of the raw values), at least 1; 1 when the statistic is constant or
+    `dist` carries no support (a bare record of chain indices)."""
+    from mcexact.diagnostics import ess
+
+    if getattr(dist, "support", None) is None:
+        return 1.0
+    n_min = min(idx.shape[0] for idx in dist.chain_index)
+    rows = np.stack([idx[:n_min] for idx in dist.chain_index])
+    tau = 1.0
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        for j in range(dist.support.shape[1]):
+            column = dist.support[rows, j].astype(float)
+            if np.ptp(column) > 0:
+                e = ess(column, method="mean")
+                if np.isfinite(e) and e > 0:
+                    tau = max(tau, column.size / e)
+    return tau
+
+
+def _pseudo_draw_mcse(mean: float, variance: float, n_eff: float) -> float:
+    """Error of a mean of values in [0, 1] from ``n_eff`` effective draws of population variance
+    `variance`, with ``_PSEUDO_DRAWS`` pseudo-draws added at 0 and at 1 (Agresti & Coull 1998)."""
+    a = _PSEUDO_DRAWS
+    total = n_eff + 2.0 * a
+    shrunk = (n_eff * mean + a) / total
+    spread = (n_eff * (variance + (mean - shrunk) ** 2) + a * shrunk ** 2
+              + a * (1.0 - shrunk) ** 2) / total
+    return float(np.sqrt(spread / total))
 
 
 class PartSampler:

@@ -208,13 +208,14 @@ def _round_robin(lengths: Sequence[int]) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _binomial_mcse(p: np.ndarray, n: np.ndarray) -> np.ndarray:
-    """``sqrt(p (1 - p) / n)`` with the variance floored at one draw's resolution.
+    """The error :func:`mcexact.montecarlo.mcse_of_indicator` gives a proportion `p` of `n`
+    independent draws: the Agresti & Coull (1998) variance with two pseudo-draws at 0 and at 1,
+    ``p~ (1 - p~) / (n + 4)``, ``p~ = (n p + 2) / (n + 4)``, so the band stays open at 0 or 1."""
+    from mcexact.montecarlo import _PSEUDO_DRAWS
 
-    The floor ``(1/(n+2)) (1 - 1/(n+2))`` (as in :func:`mcexact.montecarlo.mcse_of_indicator`)
-    keeps the band open at an estimate of exactly 0 or 1, which is known only to about 1/n.
-    """
-    floor = (1.0 / (n + 2)) * (1.0 - 1.0 / (n + 2))
-    return np.sqrt(np.maximum(p * (1.0 - p), floor) / n)
+    total = n + 2.0 * _PSEUDO_DRAWS
+    shrunk = (n * p + _PSEUDO_DRAWS) / total
+    return np.sqrt(shrunk * (1.0 - shrunk) / total)
 
 
 def _prefix_mcse(dist: ConditionalDistribution, values: np.ndarray,
@@ -223,7 +224,7 @@ def _prefix_mcse(dist: ConditionalDistribution, values: np.ndarray,
     :func:`mcexact.montecarlo.mcse_of_indicator` applied to every prefix, so the band's last point
     is the error the results report. Evaluated on at most 60 prefixes (log-spaced) and
     interpolated between them; NaN where a prefix is too short."""
-    from types import SimpleNamespace
+    import dataclasses
 
     from mcexact.montecarlo import mcse_of_indicator
 
@@ -231,8 +232,8 @@ def _prefix_mcse(dist: ConditionalDistribution, values: np.ndarray,
     picks = np.unique(np.r_[np.geomspace(1, n_points, 60).astype(int) - 1, n_points - 1])
     at = np.full(picks.shape[0], np.nan)
     for i, k in enumerate(picks):
-        prefix = SimpleNamespace(chain_index=tuple(idx[:int(used[k, c])] for c, idx in
-                                                   enumerate(dist.chain_index)), iid=False)
+        prefix = dataclasses.replace(dist, chain_index=tuple(
+            idx[:int(used[k, c])] for c, idx in enumerate(dist.chain_index)), iid=False)
         if min(int(x) for x in used[k]) >= 4:
             at[i] = mcse_of_indicator(prefix, values)
     ok = np.isfinite(at)
@@ -272,14 +273,13 @@ def plot_running_pvalue(dist: ConditionalDistribution, more, tie, *, exact: floa
     positions of their draws. The band is the pooled estimate +/- 2 MCSE, where the MCSE of the
     first n pooled draws is
 
-    - independent draws (``dist.iid``): binomial, ``sqrt(p (1 - p) / n)`` with p the running
-      estimate, the variance floored at ``(1/(n+2)) (1 - 1/(n+2))`` so the band stays open at 0;
-    - Markov chains: the error of :func:`mcexact.montecarlo.mcse_of_indicator` (batch means,
-      Flegal & Jones 2010, or Geyer's effective sample size, the larger) on each prefix; batches of
-      ``floor(sqrt(n_c))`` draws pooled over the chains around the prefix's mean, with the same
-      floor: the estimator of :func:`mcexact.montecarlo.mcse_of_indicator`, so the band's last
-      point is two of the MCSEs that function gives for all the draws. The band is absent (NaN)
-      until some chain has two batches.
+    - independent draws (``dist.iid``): ``sqrt(p~ (1 - p~) / (n + 4))`` with ``p~ = (n p + 2) /
+      (n + 4)``, p the running estimate (two pseudo-draws at 0 and at 1, Agresti & Coull 1998, as
+      :func:`mcexact.montecarlo.mcse_of_indicator` does), so the band stays open at 0;
+    - Markov chains: the error of :func:`mcexact.montecarlo.mcse_of_indicator` (lugsail batch
+      means or the multi-chain effective sample size, the larger, with the same pseudo-draws) on
+      each prefix, so the band's last point is two of the MCSEs that function gives for all the
+      draws. The band is absent (NaN) until every chain has four draws.
 
     The band is clipped to [0, 1].
 

@@ -39,6 +39,47 @@ def _wrap(text: str, indent: str = "  ") -> str:
     return textwrap.fill(text, width=_WIDTH, initial_indent=indent, subsequent_indent=indent)
 
 
+def _short_verdict(verdict: str) -> str:
+    """The verdict's first words, for a table column (the full text is listed below it)."""
+    for head in ("quotable", "more draws needed", "not converged", "not quotable",
+                 "no Monte Carlo error"):
+        if verdict.startswith(head):
+            return head
+    return verdict
+
+
+def _verdicts(tests: pd.DataFrame, estimates: pd.DataFrame) -> list:
+    """Lines of the verdict table of the Monte Carlo rows, with the reasons of the rows that are
+    not quotable."""
+    def whole(x) -> str:
+        return f"{int(round(float(x))):,}" if x is not None and np.isfinite(float(x)) else "-"
+
+    rows = []
+    for _, r in tests[tests["engine"] != "exact"].iterrows():
+        rows.append({"what": f"{r['effect']} {r['test']}", "p": r["p_value"], "mcse": r["mcse"],
+                     "ess": whole(r["ess"]), "rhat": r["rhat"], "need": whole(r["draws_needed"]),
+                     "verdict": r["verdict"], "note": r["note"]})
+    for _, r in estimates[estimates["engine"] != "exact"].iterrows():
+        rows.append({"what": f"{r['term']} two-sided p", "p": r["p_value"],
+                     "mcse": r["mcse_p_value"], "ess": whole(r["ess"]), "rhat": r["rhat"],
+                     "need": whole(r["draws_needed"]), "verdict": r["verdict"], "note": ""})
+    if not rows:
+        return []
+    frame = pd.DataFrame(rows)
+    frame["short"] = [_short_verdict(v) for v in frame["verdict"]]
+    out = [_table(frame, {"what": "p-value of", "p": "p", "mcse": "MC error", "ess": "ESS",
+                          "rhat": "R-hat", "need": "draws needed", "short": "verdict"})]
+    for _, r in frame.iterrows():
+        if r["verdict"] and r["verdict"] != "quotable":
+            why = f" ({r['note']})" if r["note"] else ""
+            out.append(_wrap(f"{r['what']}: {r['verdict']}{why}"))
+    out.append(_wrap("quotable: the Monte Carlo error meets the target (or, without one, p +/- "
+                     "2.576 MC errors lies on one side of alpha) and, for Markov chains, R-hat <= "
+                     "1.01, ESS >= 400 and the chains agree; draws needed: total draws that would "
+                     "reach that precision."))
+    return out
+
+
 def text_report(result) -> str:
     """The report printed by ``FitResult.summary()`` and the command line."""
     from mcexact.fit import CAUTION
@@ -80,6 +121,8 @@ def text_report(result) -> str:
     if monte_carlo:
         lines.append(_wrap("MC error: Monte Carlo standard error of the p-value (0 for exact "
                            "rows); Monte Carlo p-values are estimates."))
+        lines += ["", "Monte Carlo verdicts (may each p-value be quoted at the precision asked?)"]
+        lines += _verdicts(result.tests, result.estimates)
 
     lines += ["", f"Estimates per original unit, exact {level} limits"
               + (" (Monte Carlo estimates where the engine is not exact)" if monte_carlo else "")]

@@ -21,9 +21,7 @@ to disk and renamed over the target, so a run killed at any moment leaves an ear
 from __future__ import annotations
 
 import json
-import os
 import pathlib
-import tempfile
 import zipfile
 from datetime import datetime, timezone
 
@@ -31,6 +29,7 @@ import numpy as np
 import pandas as pd
 
 from mcexact._exceptions import FileFormatError
+from mcexact._files import atomic_open
 from mcexact._json import plain
 
 __all__ = ["save_run", "load_run", "FILE_FORMAT", "FILE_VERSION"]
@@ -218,23 +217,11 @@ def save_run(result, path) -> pathlib.Path:
     path = pathlib.Path(path)
     w = _Writer()
     header = json.dumps(_header(result, w), allow_nan=False)
-    folder = path.parent if str(path.parent) else pathlib.Path(".")
     try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
-    except OSError as exc:
-        raise FileFormatError(f"cannot write a saved run in {folder}: {exc}") from exc
-    try:
-        with os.fdopen(fd, "wb") as fh:
+        with atomic_open(path) as fh:
             np.savez(fh, header=np.array(header), **w.arrays)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
+    except FileNotFoundError as exc:
+        raise FileFormatError(f"cannot write a saved run at {path}: {exc}") from exc
     return path
 
 
@@ -250,6 +237,8 @@ def load_run(path):
     """
     path = pathlib.Path(path)
     name = str(path)
+    if path.is_file() and not zipfile.is_zipfile(path):
+        raise FileFormatError(f"{name} is not a saved mcexact run (not an archive)")
     try:
         archive = np.load(path, allow_pickle=False)
     except FileNotFoundError as exc:

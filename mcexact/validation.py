@@ -17,11 +17,20 @@ import pandas as pd
 from mcexact._exceptions import DataError
 from mcexact.design import Design
 
-__all__ = ["ValidationReport", "validate"]
+__all__ = ["ValidationReport", "validate", "coverage_row", "MISSED_MASS_SDS", "Z_LIMIT"]
 
 #: |z| above this flags a disagreement; about 6e-5 two-sided for a normal z, so a run of many
 #: comparisons rarely flags one by chance.
 Z_LIMIT = 4.0
+
+#: Support coverage is flagged when the exact null probability of the support points no draw
+#: visited exceeds what independent draws would leave unvisited by more than this many standard
+#: deviations. For Markov chains the expectation is taken for a fifth of the draws (as if they
+#: were five times autocorrelated), so only a sampler that cannot reach part of the support
+#: (block moves need not connect it) is flagged. Our rule, not a published one.
+MISSED_MASS_SDS = 5.0
+#: Draws of a chain counted as this many independent ones for the expectation above.
+CHAIN_DRAW_SHARE = 0.2
 
 _TEST_VALUES = ("p_value", "mid_p_value")
 _ESTIMATE_VALUES = (("estimate", "mcse"), ("ci_lower", "mcse_ci_lower"),
@@ -54,8 +63,10 @@ class ValidationReport:
 
     @property
     def passed(self) -> bool:
-        """No comparison flagged."""
-        return not bool(self.comparisons["flagged"].any())
+        """No comparison flagged and no support-coverage problem flagged."""
+        flagged_cover = ("flagged" in self.coverage.columns
+                         and bool(self.coverage["flagged"].any()))
+        return not bool(self.comparisons["flagged"].any()) and not flagged_cover
 
     def summary(self) -> str:
         z = self.comparisons["z"].to_numpy(float)
@@ -69,7 +80,11 @@ class ValidationReport:
             lines.append(f"  {row['part']}: {row['n_draws']:,} draws visited "
                          f"{row['visited_points']:,} of {row['exact_points']:,} support points "
                          f"({row['point_coverage']:.1%}), {row['mass_coverage']:.4%} of the "
-                         "null probability")
+                         "null probability"
+                         + (f"; FLAGGED: the points never visited hold {row['missed_mass']:.4g} "
+                            f"of it, where about {row['expected_missed_mass']:.2g} was expected "
+                            "(the sampler may not reach them)"
+                            if row.get("flagged", False) else ""))
         flagged = self.comparisons[self.comparisons["flagged"]]
         for _, row in flagged.iterrows():
             lines.append(f"  flagged: {row['part']} {row['item']} {row['quantity']}: exact "
@@ -79,6 +94,34 @@ class ValidationReport:
                                       else "DISAGREEMENT: do not trust this engine's results "
                                            "on this design without further checks"))
         return "\n".join(lines)
+
+
+def coverage_row(part: str, ex, md) -> dict:
+    """Support coverage of the Monte Carlo distribution `md` against the exact `ex`.
+
+    Besides the points and null probability visited: the probability of the points never
+    visited (``missed_mass``), what N independent draws would leave unvisited on average,
+    ``sum_i p_i (1 - p_i)^N`` (``expected_missed_mass``, with N the draws, or
+    ``CHAIN_DRAW_SHARE`` of them for chains), and ``flagged`` when the missed mass exceeds that by
+    more than ``MISSED_MASS_SDS`` standard deviations (``sum_i p_i^2 q_i (1 - q_i)``, q_i =
+    (1 - p_i)^N, the variance of a sum of independent misses; the misses are in fact slightly
+    negatively dependent, which only makes the rule more conservative).
+    """
+    drawn = np.concatenate(md.chain_index) if md.chain_index is not None else np.arange(0)
+    visited = {tuple(row) for row in md.support[np.unique(drawn)]}
+    hit = np.array([tuple(row) in visited for row in ex.support])
+    pmf = ex.pmf()
+    mass = float(pmf[hit].sum())
+    n_eff = md.n_draws * (1.0 if md.iid else CHAIN_DRAW_SHARE)
+    q = np.exp(n_eff * np.log1p(-np.minimum(pmf, 1 - 1e-16)))
+    expected = float(pmf @ q)
+    sd = float(np.sqrt(np.sum(pmf ** 2 * q * (1 - q))))
+    missed = max(0.0, 1.0 - mass)
+    return {"part": part, "engine": md.info.get("method"), "n_draws": md.n_draws,
+            "exact_points": ex.n_points, "visited_points": int(hit.sum()),
+            "point_coverage": float(hit.mean()), "mass_coverage": mass,
+            "missed_mass": missed, "expected_missed_mass": expected,
+            "flagged": bool(missed > expected + MISSED_MASS_SDS * sd + 1e-9)}
 
 
 def _z(mc: float, exact: float, mcse: float) -> float:
@@ -141,11 +184,5 @@ def validate(data, formula: str | None = None, *, method: str = "direct", intere
         md = mc.distribution if part == "joint" else mc.effect_distributions[part]
         if md is None:
             continue
-        drawn = np.concatenate(md.chain_index) if md.chain_index is not None else np.arange(0)
-        visited = {tuple(row) for row in md.support[np.unique(drawn)]}
-        hit = np.array([tuple(row) in visited for row in ex.support])
-        cover.append({"part": part, "engine": md.info.get("method"), "n_draws": md.n_draws,
-                      "exact_points": ex.n_points, "visited_points": int(hit.sum()),
-                      "point_coverage": float(hit.mean()),
-                      "mass_coverage": float(ex.pmf()[hit].sum())})
+        cover.append(coverage_row(part, ex, md))
     return ValidationReport(comparisons, pd.DataFrame(cover), method, exact, mc)

@@ -207,10 +207,10 @@ def test_running_pvalue_of_independent_draws():
     line = one_line(ax, "pooled")
     np.testing.assert_array_equal(line.get_xdata(), n)
     np.testing.assert_allclose(line.get_ydata(), expected, rtol=0, atol=1e-15)
-    # The documented band: binomial sqrt(p(1-p)/n), variance floored at (1/(n+2))(1 - 1/(n+2)),
-    # clipped to [0, 1].
-    floor = (1 / (n + 2)) * (1 - 1 / (n + 2))
-    half = 2 * np.sqrt(np.maximum(expected * (1 - expected), floor) / n)
+    # The documented band: the Agresti & Coull (1998) variance p~(1 - p~)/(n + 4) with
+    # p~ = (n p + 2)/(n + 4) (hand formula), clipped to [0, 1].
+    shrunk = (n * expected + 2) / (n + 4)
+    half = 2 * np.sqrt(shrunk * (1 - shrunk) / (n + 4))
     np.testing.assert_allclose(one_line(ax, "mcse-upper").get_ydata(),
                                np.minimum(expected + half, 1), atol=1e-15)
     np.testing.assert_allclose(one_line(ax, "mcse-lower").get_ydata(),

@@ -285,7 +285,7 @@ def test_failed_write_leaves_the_earlier_file_and_no_temporary(tmp_path, monkeyp
 
 
 _WRITER = r"""
-import os, sys, time, numpy as np, mcexact, mcexact.runs as runs
+import os, sys, time, numpy as np, mcexact
 design = mcexact.Design.from_arrays(np.r_[np.ones(30, int), np.zeros(90, int)],
                                     np.arange(120) % 7)
 result = mcexact.fit(design, method="direct", n_draws=40_000, n_chains=2, rng=1,
@@ -315,7 +315,7 @@ class SlowFile:
 
 
 real_fdopen = os.fdopen
-runs.os.fdopen = lambda *a, **k: SlowFile(real_fdopen(*a, **k))
+os.fdopen = lambda *a, **k: SlowFile(real_fdopen(*a, **k))
 while True:
     print("start", flush=True)
     result.save(path)
@@ -360,9 +360,27 @@ def test_estimate_whose_observed_value_was_never_drawn_is_not_quotable():
     design = mcexact.Design.from_arrays(y, z)
     exact = mcexact.fit(design, asymptotic=False)
     assert np.isfinite(exact.estimates.loc[0, "estimate"])
-    mc_fit = mcexact.fit(design, method="mcmc", n_draws=200, rng=1, **FAST)
+    mc_fit = mcexact.fit(design, method="mcmc", n_draws=200, rng=1, tilted=False, **FAST)
     dist = mc_fit.effect_distributions["z0"]
     drawn = sum(int(np.count_nonzero(c == dist.observed_index)) for c in dist.chain_index)
     assert drawn == 0, "the design no longer puts the observed value out of reach"
     row = mc_fit.estimates.loc[0]
     assert row["verdict"].startswith("not quotable: the observed statistic was never drawn")
+    # With tilting (the default) the chains are first tilted to the observed value.
+    tilted = mcexact.fit(design, method="mcmc", n_draws=200, rng=1, **FAST).estimates.loc[0]
+    assert "never drawn under the null" in tilted["note"]
+    assert np.isfinite(tilted["estimate"]) and tilted["kind"] == "cmle"
+
+
+def test_chains_that_never_move_are_not_called_converged():
+    """Nuisance values 1, 2, 4, 8, ... make W'y fix y itself: no block move can change the
+    response, so the chains sit at the data. They agree with each other trivially; the verdict
+    must say they are not evidence of convergence."""
+    w = 2 ** np.arange(12)
+    z = np.arange(12) % 3
+    y = (np.arange(12) % 2).astype(int)
+    design = mcexact.Design.from_arrays(y, z, w)
+    result = mcexact.fit(design, method="mcmc", n_draws=200, rng=1, **FAST)
+    assert result.method["parts"]["z0"]["changed_share"] == 0
+    for frame in (result.tests, result.estimates):
+        assert frame["verdict"].str.startswith("not converged: no move").all()
