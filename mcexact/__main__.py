@@ -30,7 +30,7 @@ from mcexact._json import plain
 __all__ = ["main", "build_parser", "DEFAULT_DEMO", "EXIT_CODES"]
 
 #: The demo that ``mcexact demo`` runs without a name.
-DEFAULT_DEMO = "small"
+DEFAULT_DEMO = "sparse"
 
 EXIT_OK = 0
 EXIT_NOT_QUOTABLE = 1

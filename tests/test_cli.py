@@ -361,13 +361,30 @@ def test_validate_exits_1_when_a_comparison_is_flagged(folder, capsys, monkeypat
 def test_demo_runs_the_shipped_analysis(capsys, tmp_path):
     from mcexact.demo import DEMOS
 
-    code, out, _ = run(capsys, "demo", "--json", tmp_path / "demo.json")
+    code, out, _ = run(capsys, "demo", "small", "--json", tmp_path / "demo.json")
     assert code == 0
-    _, formula, options = DEMOS[DEFAULT_DEMO]
-    expected = mcexact.fit(mcexact.load_demo(DEFAULT_DEMO), formula, **options)
+    _, formula, options = DEMOS["small"]
+    expected = mcexact.fit(mcexact.load_demo("small"), formula, **options)
     written = json.loads((tmp_path / "demo.json").read_text())
     assert written["tests"] == api_json(expected)["tests"]
     assert expected.summary() in out and str(tmp_path / "demo.json") in out
+
+
+def test_default_demo_is_the_sparse_monte_carlo_one(capsys, tmp_path):
+    """`mcexact demo` runs the sparse demo, whose parts need Monte Carlo engines; its JSON equals
+    the API's fit with the same seed and draws."""
+    from mcexact.demo import DEMOS
+
+    assert DEFAULT_DEMO == "sparse"
+    code, out, _ = run(capsys, "demo", "--draws", "400", "--seed", "3", "--json",
+                       tmp_path / "demo.json")
+    assert code == 0
+    _, formula, options = DEMOS["sparse"]
+    expected = mcexact.fit(mcexact.load_demo("sparse"), formula, n_draws=400, rng=3, **options)
+    written = json.loads((tmp_path / "demo.json").read_text())
+    assert written["tests"] == api_json(expected)["tests"]
+    assert written["estimates"] == api_json(expected)["estimates"]
+    assert {"direct", "mcmc"} <= set(written["method"]["engines"])
 
 
 # ------------------------------------------------------------------------------ errors
