@@ -56,47 +56,32 @@ EXIT_CODES = {
 
 # ------------------------------------------------------------------------------ option types
 
-def _integer(low: int) -> Callable[[str], int]:
-    def parse(text: str) -> int:
+def _option_type(convert: Callable[[str], object], what: str, ok: Callable[[object], bool],
+                 rule: str) -> Callable[[str], object]:
+    """An argparse type: `convert` the text (else "expected `what`"), then check `ok` (else
+    `rule`)."""
+    def parse(text: str):
         try:
-            value = int(text)
+            value = convert(text)
         except ValueError:
-            raise argparse.ArgumentTypeError(f"expected an integer, got {text!r}") from None
-        if value < low:
-            raise argparse.ArgumentTypeError(f"must be an integer >= {low}, got {text!r}")
+            raise argparse.ArgumentTypeError(f"expected {what}, got {text!r}") from None
+        if not ok(value):
+            raise argparse.ArgumentTypeError(f"{rule}, got {text!r}")
         return value
     return parse
 
 
-def _positive_float(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-    if not (np.isfinite(value) and value > 0):
-        raise argparse.ArgumentTypeError(f"must be a positive number, got {text!r}")
-    return value
+def _integer(low: int) -> Callable[[str], int]:
+    return _option_type(int, "an integer", lambda v: v >= low, f"must be an integer >= {low}")
 
 
-def _jobs(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected an integer, got {text!r}") from None
-    if value == 0:
-        raise argparse.ArgumentTypeError("must be a positive number of jobs, or negative to "
-                                         "count back from all cores (-1: all)")
-    return value
-
-
-def _alpha(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-    if not 0 < value < 1:
-        raise argparse.ArgumentTypeError(f"must lie strictly between 0 and 1, got {text!r}")
-    return value
+_positive_float = _option_type(float, "a number", lambda v: bool(np.isfinite(v) and v > 0),
+                               "must be a positive number")
+_jobs = _option_type(int, "an integer", lambda v: v != 0,
+                     "must be a positive number of jobs, or negative to count back from all "
+                     "cores (-1: all)")
+_alpha = _option_type(float, "a number", lambda v: 0 < v < 1,
+                      "must lie strictly between 0 and 1")
 
 
 # ------------------------------------------------------------------------------ parser
