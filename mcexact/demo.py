@@ -55,8 +55,8 @@ DEMOS = {
     "small": ("liver_small.csv", "elevation ~ dose_mg + age", {"strata": "site",
                                                                "interest": ["dose_mg", "age"]}),
     "sparse": ("rash_registry.csv", "rash ~ dose_mg_kg + comed + age",
-               {"strata": "centre", "interest": ["dose_mg_kg", "comed"], "thin": 50,
-                "block_size": 16}),
+               {"strata": "centre", "interest": ["dose_mg_kg", "comed"], "n_draws": 10_000,
+                "thin": 50, "block_size": 16}),
 }
 
 

@@ -330,8 +330,13 @@ def test_run_killed_while_writing_leaves_a_complete_file(tmp_path):
     rng = np.random.default_rng(0)
     mid_write = 0
     for attempt in range(3):
-        proc = subprocess.Popen([sys.executable, "-c", _WRITER, str(path)],
-                                stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        # Started in tmp_path: `python -c` puts the working folder first on sys.path, and the
+        # repository root holds the uncompiled source; the child imports the same mcexact as
+        # this test run (installed, or built in place).
+        env = {**os.environ, "PYTHONPATH": os.path.dirname(os.path.dirname(mcexact.__file__))}
+        proc = subprocess.Popen([sys.executable, "-c", _WRITER, str(path)], cwd=tmp_path,
+                                env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                                text=True)
         try:
             assert proc.stdout.readline().strip() == "ready", proc.stderr.read()
             assert proc.stdout.readline().strip() == "start"
