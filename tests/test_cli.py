@@ -380,7 +380,8 @@ def test_default_demo_is_the_sparse_monte_carlo_one(capsys, tmp_path):
                        tmp_path / "demo.json")
     assert code == 0
     _, formula, options = DEMOS["sparse"]
-    expected = mcexact.fit(mcexact.load_demo("sparse"), formula, n_draws=400, rng=3, **options)
+    expected = mcexact.fit(mcexact.load_demo("sparse"), formula, rng=3,
+                           **{**options, "n_draws": 400})
     written = json.loads((tmp_path / "demo.json").read_text())
     assert written["tests"] == api_json(expected)["tests"]
     assert written["estimates"] == api_json(expected)["estimates"]
