@@ -616,7 +616,8 @@ def plot_null_distribution(dist: ConditionalDistribution, column: int | str = 0,
     extra = [s for s in (given, _sample_size_text(piece) if piece.is_monte_carlo else "") if s]
     ax.set_title(first + ("\n(" + "; ".join(extra) + ")" if extra else ""))
     ax.set_ylim(bottom=0.0)
-    ax.legend(loc="upper right", fontsize="small")
+    # Below the axes, so that it never hides a bar.
+    fig.legend(loc="outside lower center", ncols=2, fontsize="small")
     return fig
 
 
