@@ -1217,12 +1217,9 @@ def _extend(result: FitResult, n_draws, target_mcse, time_budget, max_draws, pro
     precision = Precision(int(add), target_mcse, time_budget, max_draws,
                           sys.stderr.isatty() if progress is None else bool(progress))
     previous = {k: r for k, r in records.items() if r["engine"] != "skipped"}
-    fresh_n = max(int(add) or run["settings"]["n_draws"], options.n_chains)
-    if any(r["engine"] == "skipped" for r in records.values()):
-        precision_fresh = dataclasses.replace(precision, n_draws=fresh_n)
-    else:
-        precision_fresh = precision
-    return _analyse(result.design, settings, run["seeds"], precision, previous, precision_fresh)
+    fresh = dataclasses.replace(
+        precision, n_draws=max(int(add) or run["settings"]["n_draws"], options.n_chains))
+    return _analyse(result.design, settings, run["seeds"], precision, previous, fresh)
 
 
 def _check_positive(**values) -> None:

@@ -250,6 +250,21 @@ def test_reference_designs_match_brute_force(name):
 
 # ============================================================================ 1. agreement
 
+def _disagreement(where: str, value: float, exact_value: float, mcse: float, note) -> list:
+    """[] when a Monte Carlo value lies within K_MCSE of its error from the exact one and the
+    error is informative, else the message."""
+    # A row whose support points near the observed statistic could not be ranked from the draws
+    # (fit() says so in the note) carries half their probability as error, which can exceed the
+    # informative cap honestly; agreement within 4 MCSE is still required.
+    cap = np.inf if "count half" in str(note) else MCSE_CAP
+    if not (0 < mcse <= cap):
+        return [f"{where}: mcse {mcse!r} outside (0, {MCSE_CAP}]"]
+    if abs(value - exact_value) > K_MCSE * mcse:
+        return [f"{where}: {value:.5f} vs exact {exact_value:.5f}, mcse {mcse:.5f} "
+                f"({(value - exact_value) / mcse:+.2f} MCSE)"]
+    return []
+
+
 def _agreement_violations(name: str, engine: str) -> list[str]:
     """Every Monte Carlo p-value of fit(method=engine) against fit(method="enumerate")."""
     exact = cached_fit(name, "enumerate")
@@ -273,15 +288,7 @@ def _agreement_violations(name: str, engine: str) -> list[str]:
                 (row.p_value, ref.p_value, row.mcse, "p"),
                 (row.mid_p_value, ref.mid_p_value, row.mcse_mid_p, "mid-p")):
             checked += 1
-            # A row whose support points near the observed statistic could not be ranked from
-            # the draws (fit() says so in the note) carries half their probability as error, which
-            # can exceed the informative cap honestly; agreement within 4 MCSE is still required.
-            cap = np.inf if "count half" in str(row.note) else MCSE_CAP
-            if not (0 < mcse <= cap):
-                bad.append(f"{where} {label}: mcse {mcse!r} outside (0, {MCSE_CAP}]")
-            elif abs(value - exact_value) > K_MCSE * mcse:
-                bad.append(f"{where} {label}: {value:.5f} vs exact {exact_value:.5f}, "
-                           f"mcse {mcse:.5f} ({(value - exact_value) / mcse:+.2f} MCSE)")
+            bad += _disagreement(f"{where} {label}", value, exact_value, mcse, row.note)
     ee = exact.estimates.set_index("term")
     for _, row in mc.estimates.iterrows():
         ref = ee.loc[row.term]
@@ -300,15 +307,7 @@ def _agreement_violations(name: str, engine: str) -> list[str]:
                 ("p_upper", row.p_upper, ref.p_upper,
                  mcse_of_indicator(piece, (col >= t).astype(float)))):
             checked += 1
-            # A row whose support points near the observed statistic could not be ranked from
-            # the draws (fit() says so in the note) carries half their probability as error, which
-            # can exceed the informative cap honestly; agreement within 4 MCSE is still required.
-            cap = np.inf if "count half" in str(row.note) else MCSE_CAP
-            if not (0 < mcse <= cap):
-                bad.append(f"{where} {label}: mcse {mcse!r} outside (0, {MCSE_CAP}]")
-            elif abs(value - exact_value) > K_MCSE * mcse:
-                bad.append(f"{where} {label}: {value:.5f} vs exact {exact_value:.5f}, "
-                           f"mcse {mcse:.5f} ({(value - exact_value) / mcse:+.2f} MCSE)")
+            bad += _disagreement(f"{where} {label}", value, exact_value, mcse, row.note)
     assert checked >= 10
     return bad
 

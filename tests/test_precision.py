@@ -221,33 +221,23 @@ def _same_chains(a, b) -> bool:
 
 
 @pytest.mark.parametrize("engine", ["direct", "mcmc"])
-def test_part_sampler_rounds_equal_one_run_on_the_demo(demo_dose_design, engine):
-    """run(400) then run(800) gives, chain by chain, the draws of one run(1200) (the demo's dose_mg
-    part: strata plus a nuisance covariate, so block moves for the chains)."""
+@pytest.mark.parametrize("first, second, seed", [(400, 800, 41), (301, 499, 42)])
+def test_part_sampler_rounds_equal_one_run_on_the_demo(demo_dose_design, engine, first, second,
+                                                       seed):
+    """run(first) then run(second) gives, chain by chain, the draws of one run of the total (the
+    demo's dose_mg part: strata plus a nuisance covariate, so block moves for the chains). The
+    uneven split matters: fit() picks round sizes freely (fit.py, _sample_to_precision), so
+    rounds must not depend on divisibility by n_chains."""
     d, net = demo_dose_design
     o = SamplerOptions(n_draws=4, n_chains=4, n_warmup=50, thin=3)
-    rounds = PartSampler(d, engine, o, np.random.SeedSequence(41), net=net)
-    rounds.run(400)
-    split = rounds.run(800)
-    whole = PartSampler(d, engine, o, np.random.SeedSequence(41), net=net).run(1200)
-    assert split.n_draws == whole.n_draws == 1200
+    rounds = PartSampler(d, engine, o, np.random.SeedSequence(seed), net=net)
+    rounds.run(first)
+    split = rounds.run(second)
+    whole = PartSampler(d, engine, o, np.random.SeedSequence(seed), net=net).run(first + second)
+    assert split.n_draws == whole.n_draws == first + second
     assert _same_chains(split, whole)
     if engine == "mcmc":
         assert all(np.array_equal(a, b) for a, b in zip(split.counters, whole.counters))
-
-
-@pytest.mark.parametrize("engine", ["direct", "mcmc"])
-def test_part_sampler_uneven_rounds_equal_one_run(demo_dose_design, engine):
-    """run(301) then run(499) must equal one run(800): fit() picks round sizes freely
-    (fit.py, _sample_to_precision), so rounds must not depend on divisibility by n_chains."""
-    d, net = demo_dose_design
-    o = SamplerOptions(n_draws=4, n_chains=4, n_warmup=50, thin=3)
-    rounds = PartSampler(d, engine, o, np.random.SeedSequence(42), net=net)
-    rounds.run(301)
-    split = rounds.run(499)
-    whole = PartSampler(d, engine, o, np.random.SeedSequence(42), net=net).run(800)
-    assert split.n_draws == whole.n_draws == 800
-    assert _same_chains(split, whole)
 
 
 def test_part_sampler_rounds_smaller_than_the_chains(demo_dose_design):
