@@ -27,6 +27,7 @@ where the Wald error p (1 - p) / n_e is too small when the estimate is low by ch
     python benchmarks/calibration.py                 # 200 seeds per row (about 15 minutes)
     python benchmarks/calibration.py --quick         # 40 seeds
     python benchmarks/calibration.py --thin 1 --rare
+    python benchmarks/calibration.py --design 1 --engine direct --first-seed 200   # one row
 """
 
 from __future__ import annotations
@@ -108,22 +109,27 @@ def summary(p, err, p_exact):
     return float(np.mean(np.abs(z) <= 1.96)), float(np.mean(z)), float(np.std(z))
 
 
-def fit_table(n_seeds, n_draws, thin):
+def fit_table(n_seeds, n_draws, thin, first_seed=0, only_design=None, only_engine=None):
     lo, hi = 0.95 - 1.96 * math.sqrt(0.0475 / n_seeds), 0.95 + 1.96 * math.sqrt(0.0475 / n_seeds)
     print(f"fit()-level calibration of the score-test p-value: {n_seeds} seeds per row, "
           f"{n_draws:,} draws in {N_CHAINS} chains per run, Markov chains record every "
-          f"{thin}th move (fit()'s default is 10)")
+          f"{thin}th move (fit()'s default is 10); seeds {first_seed}-{first_seed + n_seeds - 1}")
     print(f"  target: coverage in [{lo:.3f}, {hi:.3f}], mean z near 0, sd z near 1")
     print(f"  {'design':32s} {'engine':6s} {'exact p':>7s} {'coverage':>8s} {'mean z':>6s} "
           f"{'sd z':>5s} {'naive cov.':>10s} {'ordered cov.':>12s} {'ord. sd z':>9s} "
           f"{'ord. naive':>10s} {'unsure':>6s} {'s/run':>6s}")
-    for name, design in designs():
+    for k, (name, design) in enumerate(designs()):
+        if only_design is not None and k != only_design:
+            continue
         p_exact, extreme = exact_score(design)
         for engine in ENGINES:
+            if only_engine is not None and engine != only_engine:
+                continue
             t0 = time.perf_counter()
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")
-                runs = [fit_run(design, engine, s, n_draws, thin, extreme) for s in range(n_seeds)]
+                runs = [fit_run(design, engine, s, n_draws, thin, extreme)
+                        for s in range(first_seed, first_seed + n_seeds)]
             p, err, naive, unsure, ordered, ordered_err = (np.array(c, float) for c in zip(*runs))
             cover, mean_z, sd_z = summary(p, err, p_exact)
             naive_cover = summary(p, naive, p_exact)[0]
@@ -182,9 +188,13 @@ def main(argv=None):
     parser.add_argument("--draws", type=int, default=4000, help="draws per run (default 4000)")
     parser.add_argument("--thin", type=int, default=10, help="Markov chain thinning (default 10)")
     parser.add_argument("--rare", action="store_true", help="also the rare-tail table")
+    parser.add_argument("--first-seed", type=int, default=0, help="first seed (default 0)")
+    parser.add_argument("--design", type=int, choices=range(3), default=None,
+                        help="only this design (0, 1 or 2, in table order)")
+    parser.add_argument("--engine", choices=ENGINES, default=None, help="only this engine")
     args = parser.parse_args(argv)
     n_seeds = args.seeds or (40 if args.quick else 200)
-    fit_table(n_seeds, args.draws, args.thin)
+    fit_table(n_seeds, args.draws, args.thin, args.first_seed, args.design, args.engine)
     if args.rare:
         rare_table(max(n_seeds, 200), args.draws)
 

@@ -237,6 +237,13 @@ cdef struct Chain:
     int64_t cross_quarters        # moves in 4 that take the block from several strata
     int64_t n_cross               # strata per cross-strata block
     bint anchored
+    # Rao-Blackwellized moments (optional): after each move, E[D | y outside the block] and
+    # E[D D' | y outside the block] for D = T - ref, the moments of the fiber the block was
+    # redrawn from (q + q * q values in `rb`).
+    bint want_rb
+    const int64_t *ref
+    double *rb
+    double *dev
 
 
 cdef inline double log_binom(const Chain *c, int64_t m, int64_t y) noexcept nogil:
@@ -295,6 +302,40 @@ cdef void enumerate_block(Chain *c, int64_t k, double lw) noexcept nogil:
             part[j] -= x * c.cons[k * c.n_cons + j]
         if c.overflow:
             return
+
+
+cdef void rb_point(Chain *c) noexcept nogil:
+    """Moments of a point mass at the current T (a move that could not change y)."""
+    cdef int64_t j, l
+    for j in range(c.q):
+        c.dev[j] = <double> (c.T[j] - c.ref[j])
+    for j in range(c.q):
+        c.rb[j] = c.dev[j]
+        for l in range(c.q):
+            c.rb[c.q + j * c.q + l] = c.dev[j] * c.dev[l]
+
+
+cdef void rb_fiber(Chain *c, int64_t n, double total) noexcept nogil:
+    """Moments of T - ref over the block's fiber, whose unnormalised weights are in fiber_lw."""
+    cdef int64_t i, j, k, l, g
+    cdef double wgt
+    cdef int64_t q = c.q
+    for j in range(q + q * q):
+        c.rb[j] = 0.0
+    for i in range(c.n_fiber):
+        wgt = c.fiber_lw[i] / total
+        for j in range(q):
+            c.dev[j] = <double> (c.T[j] - c.ref[j])
+        for k in range(n):
+            g = c.block[k]
+            if c.fiber[i * n + k] != c.rec[g * c.stride + 1]:
+                for j in range(q):
+                    c.dev[j] += <double> ((c.fiber[i * n + k] - c.rec[g * c.stride + 1])
+                                          * c.rec[g * c.stride + 3 + c.p + j])
+        for j in range(q):
+            c.rb[j] += wgt * c.dev[j]
+            for l in range(q):
+                c.rb[q + j * q + l] += wgt * c.dev[j] * c.dev[l]
 
 
 cdef bint in_block(const Chain *c, int64_t n, int64_t g) noexcept nogil:
@@ -421,6 +462,8 @@ cdef int block_move(Chain *c, bitgen_t *bg, int64_t r, bint *cross) noexcept nog
     cdef int64_t strata_in[32]
     cdef double top, total, u, acc
     cdef int res
+    if c.want_rb:
+        rb_point(c)
     n = choose_block(c, bg, r, cross)
     if n < 2:
         return 0
@@ -474,6 +517,8 @@ cdef int block_move(Chain *c, bitgen_t *bg, int64_t r, bint *cross) noexcept nog
     for i in range(c.n_fiber):
         c.fiber_lw[i] = exp(c.fiber_lw[i] - top)
         total += c.fiber_lw[i]
+    if c.want_rb:
+        rb_fiber(c, n, total)
     u = draw_uniform(bg) * total
     acc = 0.0
     pick = c.n_fiber - 1
@@ -510,7 +555,9 @@ def run_chain(object bit_generator,
               int64_t[::1] counters,
               int64_t cross_quarters=2,
               int64_t n_cross=2,
-              bint anchored=True):
+              bint anchored=True,
+              double[:, ::1] moments=None,
+              const int64_t[::1] ref=None):
     """Run one block-move chain: `burn` moves, then `out.shape[0]` records of T, one every
     `thin` moves.
 
@@ -520,8 +567,16 @@ def run_chain(object bit_generator,
     With fixed strata, `cross_quarters` moves in 4 take the block from `n_cross` (2 to 8)
     distinct strata, and `anchored` starts each stratum's part of a block at a random trial of
     its rarer outcome (see `fill_from`); ``cross_quarters=0, anchored=False`` gives the earlier
-    kernel's moves (half within one stratum, half from anywhere). All arrays are validated by the
-    caller.
+    kernel's moves (half within one stratum, half from anywhere).
+
+    `moments` (optional, ``out.shape[0]`` x (q + q * q), with `ref`, q values on T's scale)
+    receives per record the mean over its `thin` moves of the Rao-Blackwellized moments
+    E[T - ref | y outside the block] and E[(T - ref)(T - ref)' | y outside the block]: the
+    moments of the fiber each move redrew its block from (a point mass at T for a move that could
+    not change y). Since a move leaves the target invariant and redraws the block from exactly
+    that fiber distribution, each has the target's expectation of T - ref (of its square), with
+    less variance than T itself, and every move counts, not only the recorded ones (Gelfand &
+    Smith 1990; Liu, Wong & Kong 1994). All arrays are validated by the caller.
     """
     cdef bitgen_t *bg = _bitgen(bit_generator)
     cdef Chain c
@@ -609,6 +664,18 @@ def run_chain(object bit_generator,
     c.cross_quarters = cross_quarters if fixed else 0
     c.n_cross = n_cross
     c.anchored = anchored and fixed
+    cdef int64_t n_mom = q + q * q
+    cdef double[::1] rb = np.zeros(n_mom)
+    cdef double[::1] acc_rb = np.zeros(n_mom)
+    cdef double[::1] dev = np.zeros(q if q > 0 else 1)
+    c.want_rb = moments is not None
+    if c.want_rb:
+        if ref is None or ref.shape[0] != q or moments.shape[0] != n_rec \
+                or moments.shape[1] != n_mom:
+            raise ValueError("mcexact: moments must be n_records x (q + q*q), with q ref values")
+        c.ref = &ref[0]
+    c.rb = &rb[0]
+    c.dev = &dev[0]
     cdef bint cross = False
     cdef bint extra = counters.shape[0] >= 5
     cdef int64_t n_cross_moves = 0, cross_changed = 0
@@ -630,10 +697,17 @@ def run_chain(object bit_generator,
             if cross:
                 n_cross_moves += 1
                 cross_changed += res == 1
+            if c.want_rb and countdown <= thin:
+                for i in range(n_mom):
+                    acc_rb[i] += rb[i]
             countdown -= 1
             if countdown == 0:
                 for i in range(q):
                     out[rec, i] = T[i]
+                if c.want_rb:
+                    for i in range(n_mom):
+                        moments[rec, i] = acc_rb[i] / thin
+                        acc_rb[i] = 0.0
                 rec += 1
                 countdown = thin
         counters[0] += moves

@@ -65,8 +65,13 @@ class ConditionalDistribution:
     support_min, support_max : ndarray or None
         Exact range of each statistic when an engine knows it beyond the points drawn.
     null_mean, null_cov : ndarray or None
-        Exact null mean and covariance of T when an engine knows them (used by the score test in
-        place of moments estimated from the draws).
+        Null mean and covariance of T when an engine knows them or estimates them better than
+        the draws' own moments (used by the score test in place of the moments of the weights):
+        exact for the network and for swap chains, Rao-Blackwellized for block chains.
+    moment_draws : tuple of ndarray or None
+        Block chains: per chain and draw, the Rao-Blackwellized moment records behind
+        null_mean and null_cov (see :func:`mcexact.montecarlo.moments_of_draws`), so that a
+        batch of the draws can estimate its own.
     """
 
     support: np.ndarray
@@ -81,6 +86,7 @@ class ConditionalDistribution:
     support_max: np.ndarray | None = None
     null_mean: np.ndarray | None = None
     null_cov: np.ndarray | None = None
+    moment_draws: tuple | None = None
 
     def __post_init__(self):
         support = np.asarray(self.support, dtype=np.int64)

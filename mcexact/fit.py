@@ -403,7 +403,11 @@ def _conditional(design: Design, method: str, max_nodes, options: SamplerOptions
 
 def _batches(dist: ConditionalDistribution, n_batches: int = 10):
     """The draws of a Monte Carlo distribution cut into `n_batches` batches (the same share of
-    every chain in each), each as a distribution over the same support."""
+    every chain in each), each as a distribution over the same support. Null moments that the
+    draws estimate (block chains' Rao-Blackwellized records) are estimated per batch as well, so
+    that the batches show their error; exact ones are shared."""
+    from mcexact.montecarlo import moments_of_draws
+
     out = []
     for b in range(n_batches):
         counts = np.zeros(dist.n_points)
@@ -415,9 +419,13 @@ def _batches(dist: ConditionalDistribution, n_batches: int = 10):
             continue
         with np.errstate(divide="ignore"):
             lw = np.log(counts)
+        mean, cov = dist.null_mean, dist.null_cov
+        if dist.moment_draws is not None:
+            mean, cov = moments_of_draws(
+                [r[b * r.shape[0] // n_batches:(b + 1) * r.shape[0] // n_batches]
+                 for r in dist.moment_draws], dist.observed)
         out.append(ConditionalDistribution(dist.support, lw, dist.observed, dist.names,
-                                           dist.scales, null_mean=dist.null_mean,
-                                           null_cov=dist.null_cov))
+                                           dist.scales, null_mean=mean, null_cov=cov))
     return out
 
 

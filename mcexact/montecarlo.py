@@ -127,6 +127,13 @@ class Sample:
     states : list
         Per chain, the state to continue from (MCMC: response vector and bit generator state).
     seconds : float
+    null_mean, null_cov : ndarray or None
+        Exact null moments of T when known (nuisance: intercept and/or strata only).
+    info : dict
+    moment_draws : list of ndarray or None
+        Block chains at the null: per chain and draw, the Rao-Blackwellized moments of
+        T - observed over the moves since the previous draw, shape (n_draws_chain, q + q * q):
+        the mean deviation, then the second moments row by row (see :func:`moments_of_draws`).
     """
 
     engine: str
@@ -144,6 +151,7 @@ class Sample:
     null_mean: np.ndarray | None = None
     null_cov: np.ndarray | None = None
     info: dict = field(default_factory=dict)
+    moment_draws: list | None = None
 
     @property
     def n_draws(self) -> int:
@@ -159,7 +167,10 @@ class Sample:
                       self.observed, self.names, self.scales, self.log_total, self.support_min,
                       self.support_max, self.beta, counters, more.states,
                       self.seconds + more.seconds, self.null_mean, self.null_cov,
-                      {**self.info, **more.info, "n_warmup": self.info.get("n_warmup")})
+                      {**self.info, **more.info, "n_warmup": self.info.get("n_warmup")},
+                      None if self.moment_draws is None or more.moment_draws is None
+                      else [np.concatenate([a, b])
+                            for a, b in zip(self.moment_draws, more.moment_draws)])
 
     def to_distribution(self) -> ConditionalDistribution:
         """The sampled distribution: support = values drawn (plus the observed value), weights =
@@ -185,13 +196,46 @@ class Sample:
                 "seconds": self.seconds, **self.info}
         if self.beta is not None:
             info["tilt"] = [float(b) for b in self.beta]
+        mean, cov, rows = self.null_mean, self.null_cov, None
+        if self.beta is None and mean is None and self.moment_draws is not None:
+            rows = tuple(np.asarray(r, float) for r in self.moment_draws)
+            mean, cov = moments_of_draws(rows, self.observed)
         return ConditionalDistribution(
             support=support, log_weights=log_w, observed=self.observed, names=self.names,
             scales=self.scales, info=info, chain_index=tuple(np.split(inverse, splits)),
             iid=self.engine == "direct", support_min=self.support_min,
             support_max=self.support_max,
-            null_mean=self.null_mean if self.beta is None else None,
-            null_cov=self.null_cov if self.beta is None else None)
+            null_mean=mean if self.beta is None else None,
+            null_cov=cov if self.beta is None else None, moment_draws=rows)
+
+
+def moments_of_draws(rows, observed) -> tuple[np.ndarray, np.ndarray]:
+    """Null mean and covariance of T from a block chain's Rao-Blackwellized moment records.
+
+    `rows` holds, per chain, one row per draw: the mean over the moves since the previous draw of
+    E[D | y outside the moved block] and of E[D D' | y outside the block], D = T - `observed`
+    (``Sample.moment_draws``). Each is an unbiased draw of the target's moments of D (Gelfand &
+    Smith 1990), so their averages over all draws estimate E D and E D D', with less Monte Carlo
+    error than the draws of T (every move counts, and each conditional expectation averages over
+    a fiber; Liu, Wong & Kong 1994). Then ``E T = observed + E D`` and ``Cov T = E D D' - E D
+    E D'`` (deviations from the observed value keep that difference well conditioned). Returns
+    (mean, covariance); the covariance is symmetrised.
+
+    References
+    ----------
+    .. [1] Gelfand, A. E. & Smith, A. F. M. (1990). Sampling-based approaches to calculating
+       marginal densities. *Journal of the American Statistical Association* 85, 398-409.
+    .. [2] Liu, J. S., Wong, W. H. & Kong, A. (1994). Covariance structure of the Gibbs sampler
+       with applications to the comparisons of estimators and augmentation schemes.
+       *Biometrika* 81(1), 27-40.
+    """
+    obs = np.asarray(observed, float).reshape(-1)
+    q = obs.shape[0]
+    allr = np.concatenate([np.asarray(r, float).reshape(-1, q + q * q) for r in rows])
+    avg = allr.mean(axis=0)
+    d = avg[:q]
+    cov = avg[q:].reshape(q, q) - np.outer(d, d)
+    return obs + d, 0.5 * (cov + cov.T)
 
 
 # -- direct engine ----------------------------------------------------------------------------
@@ -370,6 +414,9 @@ _N_CROSS = 2
 _ANCHORED = True
 _START_SPREAD = 2.0
 _TILTED_WARMUP_SHARE = 0.5
+# Null block chains record Rao-Blackwellized moments of T (see moments_of_draws) for the score
+# test's null moments; benchmarks/bench_moments.py sets this to False to measure without.
+_RB_MOMENTS = True
 
 
 def _strata_sd(rc) -> np.ndarray:
@@ -414,12 +461,14 @@ def _start_tilts(rc, n_chains: int, spread: float) -> np.ndarray:
 
 
 def _block_worker(arrays, y0, n, seed, block_size, warmup, thin, state=None, start_theta=None,
-                  n_tilt=0, moves=None):
+                  n_tilt=0, moves=None, ref=None):
     """One block-move chain: `n` records after `warmup` moves, of which the first `n_tilt` (fresh
     chains) run under the per-group tilt `start_theta`. `moves` = (cross quarters, strata per
-    cross move, anchored), see run_chain (default: this module's settings). Returns the records, [moves, changed, skipped], the end
-    state y, the bit generator state, None (no swap units), T after the tilted warm-up and
-    [cross-strata moves, of which changed y]."""
+    cross move, anchored), see run_chain (default: this module's settings). Returns the
+    records, [moves, changed, skipped], the end state y, the bit generator state, None (no swap
+    units), T after the tilted warm-up, [cross-strata moves, of which changed y] and, with `ref`
+    (the coded T to measure from), the records' Rao-Blackwellized moments (see run_chain; else
+    None)."""
     if moves is None:
         moves = (int(_CROSS_QUARTERS), int(_N_CROSS), bool(_ANCHORED))
     bg = np.random.PCG64(seed)
@@ -438,9 +487,11 @@ def _block_worker(arrays, y0, n, seed, block_size, warmup, thin, state=None, sta
                            np.empty((1, q), dtype=np.int64), counters, *moves)
         warmup -= n_tilt
     start_T = (y @ arrays["z"]).astype(np.int64)
+    moments = None if ref is None else np.zeros((n, q + q * q))
     _sampler.run_chain(bg, y, *common, arrays["theta"], arrays["log_fact"], arrays["fixed"],
-                       block_size, warmup, thin, out, counters, *moves)
-    return out, counters[:3].copy(), y, bg.state, None, start_T, counters[3:].copy()
+                       block_size, warmup, thin, out, counters, *moves, moments,
+                       None if ref is None else np.ascontiguousarray(ref, np.int64))
+    return out, counters[:3].copy(), y, bg.state, None, start_T, counters[3:].copy(), moments
 
 
 def _units(arrays, y):
@@ -612,22 +663,32 @@ def draw_mcmc(design, options: SamplerOptions, seeds, beta=None, continue_from=N
                 for y0, n, seed, st, un, th in zip(starts, sizes, seeds, states, units,
                                                    start_thetas))
         else:
+            # Null chains also record Rao-Blackwellized moments of T about the observed value,
+            # from which the score test takes its null moments (see moments_of_draws).
+            ref = ((rc.events @ rc.interest).astype(np.int64)
+                   if beta_arr is None and _RB_MOMENTS else None)
             results = parallel(
                 delayed(_block_worker)(arrays, y0, n, seed, block, warmup, thin, st, th, n_tilt,
-                                       moves)
+                                       moves, ref)
                 for y0, n, seed, st, th in zip(starts, sizes, seeds, states, start_thetas))
     chains = [r[0] * rc.step + rc.offset for r in results]
     if n_tilt > 0:
         # The statistics where the chains stood after the tilted part of the warm-up.
         start_info["start_statistics"] = [(r[5] * rc.step + rc.offset).tolist() for r in results]
     moments = stratified_moments(design) if swap and beta_arr is None else (None, None)
+    moment_draws = None
+    if not swap and beta_arr is None and _RB_MOMENTS:
+        # Coded deviations from the observed T to the user's scale: times the step per column.
+        step = np.broadcast_to(np.asarray(rc.step, float).reshape(-1), (rc.interest.shape[1],))
+        scale = np.r_[step, np.outer(step, step).reshape(-1)]
+        moment_draws = [r[7] * scale for r in results]
     return Sample("mcmc", chains, np.asarray(design.observed_interest, np.int64),
                   tuple(design.interest_names), np.asarray(design.interest_scales, float),
                   beta=beta_arr, counters=[r[1] for r in results],
                   states=[{"y": r[2], "bit_generator": r[3], "units": r[4]}
                           for r in results],
                   seconds=time.perf_counter() - t0,
-                  null_mean=moments[0], null_cov=moments[1],
+                  null_mean=moments[0], null_cov=moments[1], moment_draws=moment_draws,
                   info={"move": "swap" if swap else "block",
                         "block_size": None if swap else block,
                         "thin": int(options.thin), "n_warmup": warmup, "design_key": key,

@@ -117,6 +117,9 @@ def _sample(w: _Writer, prefix: str, sample) -> dict:
            "counters": [w.put(f"{prefix}/counters{c}", ct)
                         for c, ct in enumerate(sample.counters)],
            "states": []}
+    if sample.moment_draws is not None:
+        out["moment_draws"] = [w.put(f"{prefix}/moments{c}", md)
+                               for c, md in enumerate(sample.moment_draws)]
     if sample.beta is not None:
         raise ValueError("tilted samples are not part of a saved run")
     for name in ("support_min", "support_max", "null_mean", "null_cov"):
@@ -147,6 +150,8 @@ def _unsample(spec: dict, arrays):
         states.append(st)
     opt = {name: np.array(arrays[spec[name]]) for name in (
         "support_min", "support_max", "null_mean", "null_cov") if name in spec}
+    if "moment_draws" in spec:
+        opt["moment_draws"] = [np.array(arrays[a]) for a in spec["moment_draws"]]
     return Sample(spec["engine"], [np.array(arrays[a]) for a in spec["chains"]],
                   np.array(arrays[spec["observed"]]), tuple(spec["names"]),
                   np.array(arrays[spec["scales"]]), log_total=spec["log_total"],
