@@ -14,10 +14,12 @@ Columns of the main table, per design and engine:
   treats the draws as independent; autocorrelated chains make it too small.
 - ``ordered cov.``, ``ord. sd z``: the same draws with the support ranked by the exact test
   statistic (exact null moments) and the error of ``mcse_of_indicator``: the Monte Carlo error of
-  the indicator mean alone; ``ord. naive``: the coverage of that estimate with the naive error. The Markov chains estimate the null moments of the score test from the
-  draws, so a support point near the observed statistic can fall on either side; fit() then counts
-  it half, with half its probability as error. The gap between the two coverages is that
-  ranking's share.
+  the indicator mean alone; ``ord. naive``: the coverage of that estimate with the naive error.
+  Block chains (the nuisance design) estimate the null moments of the score test, from
+  Rao-Blackwellized records of every move, so a support point near the observed statistic can
+  fall on either side; fit() then counts it half, with half its probability as error. The gap
+  between the two coverages is that ranking's share. (The direct engine and swap chains use
+  exact null moments.)
 - ``unsure``: share of runs in which fit() counted such points half.
 
 ``--thin 1`` records every move: the chains are then strongly autocorrelated and the naive error
