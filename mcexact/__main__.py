@@ -170,7 +170,8 @@ def _add_seed_option(g) -> None:
 
 def _add_cluster_options(p: argparse.ArgumentParser) -> None:
     g = p.add_argument_group("parallel runs (the numbers do not depend on these)")
-    g.add_argument("--jobs", type=_jobs, metavar="N", help="chains run at once (-1: all cores)")
+    g.add_argument("--jobs", type=_jobs, metavar="N", default=-1,
+                   help="chains run at once (default -1: all cores)")
     g.add_argument("--backend", metavar="NAME",
                    help="joblib backend for the chains, e.g. loky or dask (default: threads)")
     g.add_argument("--scheduler", metavar="ADDRESS",
@@ -313,7 +314,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="draws per Monte Carlo part (default: the demo's own, else "
                         f"{_fit_defaults()['n_draws']:,})")
     _add_seed_option(p)
-    p.add_argument("--jobs", type=_jobs, metavar="N", help="chains run at once (-1: all cores)")
+    p.add_argument("--jobs", type=_jobs, metavar="N", default=-1,
+                   help="chains run at once (default -1: all cores)")
     _add_output_options(p)
     p.set_defaults(func=_demo)
     return parser
