@@ -35,7 +35,11 @@ from mcexact._json import plain
 __all__ = ["save_run", "load_run", "FILE_FORMAT", "FILE_VERSION"]
 
 FILE_FORMAT = "mcexact.run"
-FILE_VERSION = 1
+FILE_VERSION = 2
+# Versions this mcexact reads. Version 2 adds the block chains' Rao-Blackwellized moment records
+# (``Sample.moment_draws``); a version-1 run has none, and extending it keeps the null moments its
+# draws gave, as when it was made.
+READABLE_VERSIONS = (1, 2)
 
 _DESIGN_ARRAYS = ("events", "trials", "stratum", "interest", "nuisance", "interest_scales",
                   "nuisance_scales")
@@ -257,10 +261,10 @@ def load_run(path):
             header = json.loads(str(archive["header"]))
             if not isinstance(header, dict) or header.get("format") != FILE_FORMAT:
                 raise FileFormatError(f"{name} is not a saved mcexact run")
-            if header.get("version") != FILE_VERSION:
+            if header.get("version") not in READABLE_VERSIONS:
                 raise FileFormatError(f"{name} is a saved run of version "
-                                      f"{header.get('version')!r}; this mcexact reads version "
-                                      f"{FILE_VERSION}")
+                                      f"{header.get('version')!r}; this mcexact reads versions "
+                                      + ", ".join(map(str, READABLE_VERSIONS)))
             arrays = {k: archive[k] for k in archive.files if k != "header"}
     except FileFormatError:
         raise

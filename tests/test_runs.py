@@ -268,6 +268,40 @@ def test_wrong_version_and_inconsistent_content_are_rejected(tmp_path):
         mcexact.load_run(lost)
 
 
+def test_version_1_run_of_block_chains_extends_with_the_draws_own_moments(tmp_path, monkeypatch):
+    """A version-1 saved run (before block chains recorded Rao-Blackwellized moments) still loads;
+    extending it keeps the null moments its draws give, so it equals one uninterrupted run made
+    with the records switched off (montecarlo._RB_MOMENTS)."""
+    from mcexact import runs
+
+    design = _small("nuisance")
+    first = mcexact.fit(design, method="mcmc", n_draws=300, rng=11, **FAST)
+    path = first.save(tmp_path / "v2.mcx")
+    old = tmp_path / "v1.mcx"
+
+    def as_version_1(header, arrays):
+        header["version"] = 1
+        for part in header["parts"].values():
+            for name in part.get("sample", {}).pop("moment_draws", []):
+                del arrays[name]
+    _rewrite_header(path, old, as_version_1)
+    assert runs.FILE_VERSION == 2 and 1 in runs.READABLE_VERSIONS
+    with np.load(path, allow_pickle=False) as archive:
+        assert any("moments" in k for k in archive.files)
+    reopened = mcexact.load_run(old)
+    samples = [rec["sample"] for rec in reopened._run["parts"].values()]
+    assert samples and all(s.moment_draws is None for s in samples)
+    assert all(s.moment_draws is not None
+               for s in (rec["sample"] for rec in mcexact.load_run(path)._run["parts"].values()))
+    monkeypatch.setattr(mc, "_RB_MOMENTS", False)
+    whole = mcexact.fit(design, method="mcmc", n_draws=800, rng=11, **FAST)
+    _same(reopened.extend(500), whole)
+    monkeypatch.setattr(mc, "_RB_MOMENTS", True)
+    # The version-2 file extends with the records, as a fresh run does.
+    _same(mcexact.load_run(path).extend(500),
+          mcexact.fit(design, method="mcmc", n_draws=800, rng=11, **FAST))
+
+
 def test_failed_write_leaves_the_earlier_file_and_no_temporary(tmp_path, monkeypatch):
     good = _saved(tmp_path)
     before = open(good, "rb").read()
