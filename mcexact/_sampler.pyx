@@ -234,6 +234,12 @@ cdef struct Chain:
     const int64_t *inf_cum        # n_inf + 1 cumulative sizes
     const int64_t *anchor_total   # H
     const int64_t *anchor_events  # H: 1 if the anchor trials are the events, 0 the non-events
+    # Anchored choice: a Fenwick (binary indexed) tree over the groups of their anchor trials
+    # a_g, so that a random anchor trial of a stratum costs O(log K) rather than a scan of the
+    # stratum; kept in step with y by change_y. (Fenwick, P. M. (1994). A new data structure for
+    # cumulative frequency tables. Software: Practice and Experience 24(3), 327-336.)
+    int64_t *fen                  # K + 1
+    int64_t fen_top               # largest power of two <= K
     int64_t cross_quarters        # moves in 4 that take the block from several strata
     int64_t n_cross               # strata per cross-strata block
     bint anchored
@@ -250,13 +256,42 @@ cdef inline double log_binom(const Chain *c, int64_t m, int64_t y) noexcept nogi
     return c.log_fact[m] - c.log_fact[y] - c.log_fact[m - y]
 
 
+cdef inline void fen_add(Chain *c, int64_t g, int64_t d) noexcept nogil:
+    cdef int64_t i = g + 1
+    while i <= c.K:
+        c.fen[i] += d
+        i += i & (-i)
+
+
+cdef inline int64_t fen_prefix(const Chain *c, int64_t g) noexcept nogil:
+    """Anchor trials of groups 0..g-1."""
+    cdef int64_t i = g, total = 0
+    while i > 0:
+        total += c.fen[i]
+        i -= i & (-i)
+    return total
+
+
+cdef inline int64_t fen_search(const Chain *c, int64_t target) noexcept nogil:
+    """The least group g with fen_prefix(g + 1) > target (0 <= target < all anchor trials)."""
+    cdef int64_t pos = 0, step = c.fen_top
+    while step > 0:
+        if pos + step <= c.K and c.fen[pos + step] <= target:
+            pos += step
+            target -= c.fen[pos]
+        step >>= 1
+    return pos
+
+
 cdef inline void change_y(Chain *c, int64_t g, int64_t delta) noexcept nogil:
-    """Add `delta` events to group g, keeping T in step."""
+    """Add `delta` events to group g, keeping T (and the anchor counts) in step."""
     cdef Py_ssize_t j
     cdef int64_t *r = c.rec + g * c.stride
     r[1] += delta
     for j in range(c.q):
         c.T[j] += delta * r[3 + c.p + j]
+    if c.anchored:
+        fen_add(c, g, delta if c.anchor_events[r[2]] else -delta)
 
 
 cdef void enumerate_block(Chain *c, int64_t k, double lw) noexcept nogil:
@@ -365,16 +400,9 @@ cdef int64_t anchor_group(const Chain *c, bitgen_t *bg, int64_t h) noexcept nogi
     a_g / A_h, a_g its trials of the anchor outcome (events, or non-events when those are rarer)
     in the current y and A_h = sum of a_g over the stratum (fixed)."""
     cdef int64_t u = draw_bounded(bg, <uint32_t> c.anchor_total[h])
-    cdef int64_t g, a, acc = 0
     cdef int64_t last = c.start[h] + c.size[h] - 1
-    for g in range(c.start[h], last):
-        a = c.rec[g * c.stride + 1]
-        if not c.anchor_events[h]:
-            a = c.rec[g * c.stride] - a
-        acc += a
-        if u < acc:
-            return g
-    return last
+    cdef int64_t g = fen_search(c, fen_prefix(c, c.start[h]) + u)
+    return g if g < last else last
 
 
 cdef int64_t fill_from(Chain *c, bitgen_t *bg, int64_t first, int64_t count, int64_t k,
@@ -664,6 +692,20 @@ def run_chain(object bit_generator,
     c.cross_quarters = cross_quarters if fixed else 0
     c.n_cross = n_cross
     c.anchored = anchored and fixed
+    cdef int64_t[::1] fen = np.zeros(K + 1, dtype=np.int64)
+    cdef int64_t a_g, up
+    c.fen = &fen[0]
+    c.fen_top = 1
+    while c.fen_top * 2 <= K:
+        c.fen_top *= 2
+    if c.anchored:
+        # Linear-time build: each node passes its sum on to its parent.
+        for g in range(K):
+            a_g = y[g] if anchor_events[stratum[g]] else m[g] - y[g]
+            fen[g + 1] += a_g
+            up = (g + 1) + ((g + 1) & (-(g + 1)))
+            if up <= K:
+                fen[up] += fen[g + 1]
     cdef int64_t n_mom = q + q * q
     cdef double[::1] rb = np.zeros(n_mom)
     cdef double[::1] acc_rb = np.zeros(n_mom)
