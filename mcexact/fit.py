@@ -393,6 +393,8 @@ def _conditional(design: Design, method: str, max_nodes, options: SamplerOptions
     tilter = None
     if dist.is_monte_carlo:
         info["n_draws"] = dist.n_draws
+        info["null_moments"] = ("rao_blackwellized" if dist.moment_draws is not None
+                                else "exact" if dist.null_mean is not None else "draws")
     if (engine == "direct" or (engine == "mcmc" and _TILT_CHAINS)) and not interrupt.set:
 
         def tilter(beta, _net=p._network if p is not None else None, _engine=engine):

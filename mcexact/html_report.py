@@ -319,12 +319,20 @@ def _engine_rows(result) -> pd.DataFrame:
             "move": info.get("move", ""),
             "block_size": count(info.get("block_size")),
             "changed_share": info.get("changed_share"),
+            "null_moments": _NULL_MOMENTS.get(info.get("null_moments"), ""),
             "plan_reason": plan.get("reason", ""),
         })
     return pd.DataFrame(rows, columns=["part", "engine", "reason", "nuisance_nodes",
                                        "full_peak_estimate", "full_total_estimate",
                                        "plan_seconds", "n_draws", "stopped", "seconds", "move",
-                                       "block_size", "changed_share", "plan_reason"])
+                                       "block_size", "changed_share", "null_moments",
+                                       "plan_reason"])
+
+
+# How the score test's null moments were obtained (a part's "null_moments"), for the reader.
+_NULL_MOMENTS = {"exact": "exact",
+                 "rao_blackwellized": "estimated (Rao-Blackwellized over every chain move)",
+                 "draws": "estimated from the draws"}
 
 
 def _engines_section(result) -> str:
@@ -336,7 +344,8 @@ def _engines_section(result) -> str:
                ("full_peak_estimate", "full network, largest stage (estimate)"),
                ("full_total_estimate", "full network, all stages (estimate)"),
                ("plan_seconds", "planning (s)"), ("n_draws", "draws"),
-               ("stopped", "stopped at"), ("seconds", "sampling (s)")]
+               ("stopped", "stopped at"), ("seconds", "sampling (s)"),
+               ("null_moments", "score test's null moments")]
     if any(frame["move"]):
         columns += [("move", "chain move"), ("block_size", "groups per block move"),
                     ("changed_share", "share of moves that changed the table")]

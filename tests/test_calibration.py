@@ -433,3 +433,25 @@ def test_a_move_that_cannot_change_y_records_a_point_mass():
     assert counters[0] == 5 + 3 * 20 and counters[1] == 0
     np.testing.assert_array_equal(out, np.full((20, 1), t))
     np.testing.assert_array_equal(moments, np.tile([2.0, 4.0], (20, 1)))
+
+
+def test_each_part_says_where_its_null_moments_come_from(monkeypatch):
+    """method["parts"][...]["null_moments"]: "exact" for direct draws (the network's moments) and
+    swap chains (closed form), "rao_blackwellized" for block chains, "draws" for block chains
+    without the records; the HTML report's engine table says the same."""
+    fast = dict(n_draws=400, asymptotic=False, tilted=False, progress=False, rng=1)
+    kinds = {
+        "exact": [mcexact.fit(nuisance_design(), method="direct", **fast),
+                  mcexact.fit(sets_design(), method="mcmc", **fast)],
+        "rao_blackwellized": [mcexact.fit(nuisance_design(), method="mcmc", **fast)],
+    }
+    monkeypatch.setattr(montecarlo, "_RB_MOMENTS", False)
+    kinds["draws"] = [mcexact.fit(nuisance_design(), method="mcmc", **fast)]
+    shown = {"exact": "exact</td>", "rao_blackwellized": "Rao-Blackwellized over every chain move",
+             "draws": "estimated from the draws"}
+    for kind, results in kinds.items():
+        for r in results:
+            assert r.method["parts"]["z"]["null_moments"] == kind
+            assert shown[kind] in r.to_html(), kind
+    exact = mcexact.fit(nuisance_design(), asymptotic=False)
+    assert "null_moments" not in exact.method["parts"]["z"]
