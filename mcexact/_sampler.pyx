@@ -77,10 +77,19 @@ def build_alias(const int64_t[::1] node_arc_ptr, const double[::1] arc_prob):
     cdef Py_ssize_t n_arcs = arc_prob.shape[0]
     cdef double[::1] aprob = np.empty(n_arcs)
     cdef int64_t[::1] aarc = np.empty(n_arcs, dtype=np.int64)
-    cdef double[::1] scaled = np.empty(n_arcs)
-    cdef int64_t[::1] small = np.empty(n_arcs, dtype=np.int64)
-    cdef int64_t[::1] large = np.empty(n_arcs, dtype=np.int64)
     cdef Py_ssize_t i, a, lo, hi, k, ns, nl
+    cdef Py_ssize_t max_k = 1
+    for i in range(n_nodes):
+        if node_arc_ptr[i + 1] - node_arc_ptr[i] > max_k:
+            max_k = node_arc_ptr[i + 1] - node_arc_ptr[i]
+    # Scratch for one node at a time (indexed from its first arc), not for all arcs: the tables
+    # of a network of tens of millions of arcs then need no more memory than their own.
+    cdef double[::1] scaled_buf = np.empty(max_k)
+    cdef int64_t[::1] small_buf = np.empty(max_k, dtype=np.int64)
+    cdef int64_t[::1] large_buf = np.empty(max_k, dtype=np.int64)
+    cdef double *scaled
+    cdef int64_t *small
+    cdef int64_t *large
     cdef int64_t s, l
     cdef double total
     with nogil:
@@ -90,37 +99,41 @@ def build_alias(const int64_t[::1] node_arc_ptr, const double[::1] arc_prob):
             k = hi - lo
             if k == 0:
                 continue
+            # scaled[j]: arc lo + j's probability times k; small, large: arc indices.
+            scaled = &scaled_buf[0]
+            small = &small_buf[0]
+            large = &large_buf[0]
             total = 0.0
             for a in range(lo, hi):
                 total += arc_prob[a]
             ns = 0
             nl = 0
             for a in range(lo, hi):
-                scaled[a] = arc_prob[a] * k / total
+                scaled[a - lo] = arc_prob[a] * k / total
                 aarc[a] = a
-                if scaled[a] < 1.0:
-                    small[lo + ns] = a
+                if scaled[a - lo] < 1.0:
+                    small[ns] = a
                     ns += 1
                 else:
-                    large[lo + nl] = a
+                    large[nl] = a
                     nl += 1
             while ns > 0 and nl > 0:
                 ns -= 1
-                s = small[lo + ns]
-                l = large[lo + nl - 1]
-                aprob[s] = scaled[s]
+                s = small[ns]
+                l = large[nl - 1]
+                aprob[s] = scaled[s - lo]
                 aarc[s] = l
-                scaled[l] = (scaled[l] + scaled[s]) - 1.0
-                if scaled[l] < 1.0:
+                scaled[l - lo] = (scaled[l - lo] + scaled[s - lo]) - 1.0
+                if scaled[l - lo] < 1.0:
                     nl -= 1
-                    small[lo + ns] = l
+                    small[ns] = l
                     ns += 1
             while nl > 0:
                 nl -= 1
-                aprob[large[lo + nl]] = 1.0
+                aprob[large[nl]] = 1.0
             while ns > 0:                       # rounding leftovers
                 ns -= 1
-                aprob[small[lo + ns]] = 1.0
+                aprob[small[ns]] = 1.0
     return np.asarray(aprob), np.asarray(aarc)
 
 

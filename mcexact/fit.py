@@ -1096,6 +1096,9 @@ def _analyse(design: Design, settings: dict, seeds: dict, precision: Precision,
                                      (alpha, target_mcse)))
         test_rows += _flag_frozen(info, rows)
         estimate_rows += _flag_frozen(info, est)
+        # The tilter holds this part's nuisance network: release it before the next part plans
+        # its own, so that two networks never sit in memory together.
+        tilter = None
 
     # Joint distribution of all interest columns.
     joint_estimate = None

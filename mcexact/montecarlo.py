@@ -241,25 +241,50 @@ def moments_of_draws(rows, observed) -> tuple[np.ndarray, np.ndarray]:
 # -- direct engine ----------------------------------------------------------------------------
 
 def _flatten(net, arc_logp=None):
-    """Global arrays of the nuisance network for the direct kernel, with per-node alias tables."""
+    """Global arrays of the nuisance network for the direct kernel, with per-node alias tables.
+
+    The structure (node pointers, successors, events per arc) is the same for every tilt, so it is
+    built once per network and kept in the network's cache; only the alias tables depend on the
+    arc probabilities. Arrays are filled in place, stage by stage, so the peak memory is about
+    the arrays returned (no per-stage copies joined at the end)."""
+    cache = getattr(net, "_cache", None)
+    structure = cache.get("structure") if cache is not None else None
+    if structure is None:
+        structure = _flat_structure(net)
+        if cache is not None:
+            cache["structure"] = structure
+    node_ptr, succ, ys = structure
+    logps = net.arc_logp if arc_logp is None else arc_logp
+    probs = np.empty(succ.shape[0])
+    base = 0
+    for lp in logps:
+        np.exp(lp, out=probs[base:base + lp.shape[0]])
+        base += lp.shape[0]
+    alias_prob, alias_arc = _sampler.build_alias(node_ptr, probs)
+    return node_ptr, succ, ys, alias_prob, alias_arc
+
+
+def _flat_structure(net):
+    """(node_ptr, succ, ys) of `_flatten`: arcs of all stages in one array, node pointers into it
+    and global successor indices."""
     K = net.problem.n_stages
     offsets = np.cumsum([0] + list(net.stage_nodes))
-    ptrs, succ, ys, probs = [], [], [], []
+    n_arcs = int(sum(int(net.arc_ptr[k][-1]) for k in range(K)))
+    node_ptr = np.empty(int(offsets[-1]) + 1, dtype=np.int64)
+    succ = np.empty(n_arcs, dtype=np.int64)
+    ys = np.empty(n_arcs, dtype=np.int32)
     arc_base = 0
-    logps = net.arc_logp if arc_logp is None else arc_logp
     for k in range(K):
         ptr = net.arc_ptr[k]
-        ptrs.append(ptr[:-1] + arc_base)
-        succ.append(net.arc_succ[k].astype(np.int64) + offsets[k + 1])
-        ys.append(net.arc_y[k])
-        probs.append(np.exp(logps[k]))
-        arc_base += ptr[-1]
+        n_k, a_k = ptr.shape[0] - 1, int(ptr[-1])
+        np.add(ptr[:-1], arc_base, out=node_ptr[offsets[k]:offsets[k] + n_k])
+        np.add(net.arc_succ[k], offsets[k + 1], out=succ[arc_base:arc_base + a_k],
+               casting="unsafe")
+        ys[arc_base:arc_base + a_k] = net.arc_y[k]
+        arc_base += a_k
     # The final stage's single node has no arcs; its pointer entries close the array.
-    node_ptr = np.concatenate(ptrs + [np.array([arc_base, arc_base])]).astype(np.int64)
-    node_ptr = node_ptr[:offsets[-1] + 1]
-    alias_prob, alias_arc = _sampler.build_alias(node_ptr, np.concatenate(probs))
-    return (node_ptr, np.concatenate(succ), np.concatenate(ys).astype(np.int32), alias_prob,
-            alias_arc)
+    node_ptr[offsets[K]:] = arc_base
+    return node_ptr, succ, ys
 
 
 def _tilted_logp(net, theta_per_stage):

@@ -895,3 +895,43 @@ def test_swap_chains_carry_exact_null_moments(with_strata):
     np.testing.assert_allclose(sample.null_cov, exact.cov(), atol=1e-10)
     dist = sample.to_distribution()
     np.testing.assert_allclose(dist.null_mean, exact.mean(), atol=1e-10)
+
+
+def test_direct_kernel_arrays_equal_the_per_stage_network_and_are_shared_between_tilts():
+    """montecarlo._flatten against the network's own per-stage arrays joined by hand (node
+    pointers offset by the arcs before, successors by the nodes before), and its alias tables
+    against a hand check of Walker's property: each node's arcs get back their probabilities,
+    P(arc a) = (alias_prob[a] + sum over slots s aliasing a of (1 - alias_prob[s])) / k. A tilted
+    set-up shares the structure arrays (the same objects) and changes only the tables."""
+    from mcexact import montecarlo
+
+    d = strata_nuisance()
+    net = plan(d)._network
+    node_ptr, succ, ys, aprob, aarc = montecarlo._flatten(net)
+    K = net.problem.n_stages
+    offsets = np.cumsum([0] + list(net.stage_nodes))
+    base, ptrs, succs, yys, probs = 0, [], [], [], []
+    for k in range(K):
+        ptrs.append(net.arc_ptr[k][:-1] + base)
+        succs.append(net.arc_succ[k].astype(np.int64) + offsets[k + 1])
+        yys.append(net.arc_y[k])
+        probs.append(np.exp(net.arc_logp[k]))
+        base += int(net.arc_ptr[k][-1])
+    joined = np.r_[np.concatenate(ptrs), base, base][:offsets[-1] + 1]
+    np.testing.assert_array_equal(node_ptr, joined)
+    np.testing.assert_array_equal(succ, np.concatenate(succs))
+    np.testing.assert_array_equal(ys, np.concatenate(yys))
+    p = np.concatenate(probs)
+    for i in range(node_ptr.shape[0] - 1):
+        lo, hi = node_ptr[i], node_ptr[i + 1]
+        if hi == lo:
+            continue
+        k = hi - lo
+        back = aprob[lo:hi].copy()
+        for s in range(lo, hi):
+            back[aarc[s] - lo] += 1.0 - aprob[s] if aarc[s] != s else 0.0
+        np.testing.assert_allclose(back / k, p[lo:hi] / p[lo:hi].sum(), rtol=0, atol=1e-12)
+    theta = np.linspace(-0.2, 0.3, K)
+    tilted = montecarlo._flatten(net, montecarlo._tilted_logp(net, theta))
+    assert all(a is b for a, b in zip(tilted[:3], (node_ptr, succ, ys)))
+    assert not np.array_equal(tilted[3], aprob)
