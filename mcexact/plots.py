@@ -189,7 +189,8 @@ def plot_trace(dist: ConditionalDistribution, column: int | str = 0) -> Figure:
     ax.set_ylabel(_statistic_label(dist, j))
     ax.set_title(f"Path of the {dist.names[j]} statistic along each chain\n"
                  f"({_sample_size_text(dist)})")
-    ax.legend(loc="best", fontsize="small", ncols=2)
+    # Below the axes, so that it never hides a path.
+    fig.legend(loc="outside lower center", fontsize="small", ncols=5)
     return fig
 
 
@@ -281,7 +282,10 @@ def plot_running_pvalue(dist: ConditionalDistribution, more, tie, *, exact: floa
       each prefix, so the band's last point is two of the MCSEs that function gives for all the
       draws. The band is absent (NaN) until every chain has four draws.
 
-    The band is clipped to [0, 1].
+    The band is clipped to [0, 1]. When the first 10% of the draws reach over 4 times higher than
+    the rest (a small p-value, whose early band is wide), the y axis is fitted to the rest, and a note (gid
+    ``"clipped-note"``) says that the early values run off the top. The legend sits below the
+    axes.
 
     Curves are evaluated at every draw count up to 2000 draws, and at 2000 evenly spaced counts
     beyond. The x axis is logarithmic, so early instability and late drift are both visible.
@@ -368,12 +372,44 @@ def plot_running_pvalue(dist: ConditionalDistribution, more, tie, *, exact: floa
                    gid="exact", label=f"exact {what} {float(exact):.4g}")
     ax.set_xscale("log")
     ax.set_xlim(1, n_total)
+    top = _focus_top(points, n_total, running, upper, exact)
+    if top is not None:
+        ax.set_ylim(0.0, top)
+        ax.text(0.99, 0.98, "y axis fitted to the last 90% of the draws; earlier values and band "
+                "run off the top", transform=ax.transAxes, ha="right", va="top",
+                fontsize="x-small", color="0.25", gid="clipped-note",
+                bbox={"boxstyle": "round", "facecolor": "white", "edgecolor": "0.8"})
     ax.set_xlabel("draws used, all chains taken in turn (log scale)")
     ax.set_ylabel(f"Monte Carlo {what} estimate")
     ax.set_title(f"Monte Carlo {what} as draws accumulate: test of "
                  f"{', '.join(dist.names)}\n({_sample_size_text(dist)})")
-    ax.legend(loc="best", fontsize="small")
+    # Below the axes, so that it never hides the curves.
+    fig.legend(loc="outside lower center", fontsize="small", ncols=3)
     return fig
+
+
+# Share of the draws, counted from the first, whose running values may run off the top of the
+# running p-value plot: their band is wide by construction and would squash the rest.
+_FOCUS_SKIP = 0.1
+# ... when the rest would otherwise use less than this share of the height.
+_FOCUS_SQUASH = 0.25
+
+
+def _focus_top(points, n_total, running, upper, exact) -> float | None:
+    """Upper y limit that shows the running p-value and its band over the draws after the first
+    10% (and the exact line), with a margin; None unless the full range is over 4 times that."""
+    late = points >= max(2, int(np.ceil(_FOCUS_SKIP * n_total)))
+    if late.sum() < 2:
+        return None
+    band = upper[late]
+    values = np.r_[running[late], band[np.isfinite(band)],
+                   [] if exact is None else [float(exact)]]
+    top = min(1.0, 1.15 * float(values.max())) if values.size else None
+    finite = upper[np.isfinite(upper)]
+    full = max(float(running.max()), float(finite.max()) if finite.size else 0.0)
+    if top is None or top <= 0.0 or top >= _FOCUS_SQUASH * full:
+        return None
+    return top
 
 
 # -- autocorrelation ------------------------------------------------------------------------------
@@ -488,7 +524,7 @@ def plot_autocorrelation(dist: ConditionalDistribution, column: int | str = 0,
     ax.set_ylabel("autocorrelation")
     ax.set_title(f"Within-chain autocorrelation of the {dist.names[j]} statistic\n"
                  f"({_sample_size_text(dist)})")
-    ax.legend(loc="upper right" if not constant else "center right", fontsize="small", ncols=2)
+    fig.legend(loc="outside lower center", fontsize="small", ncols=5)
     return fig
 
 
@@ -523,6 +559,11 @@ def _tilt_for(dist: ConditionalDistribution, j: int, beta) -> float:
     return value
 
 
+# Up to this many support points the null distribution plot draws an error bar on every bar;
+# beyond, a band (more bars than this leave a few pixels each).
+_MAX_ERROR_BARS = 80
+
+
 def plot_null_distribution(dist: ConditionalDistribution, column: int | str = 0,
                            beta=None) -> Figure:
     """Bar chart of the conditional distribution of one statistic, observed value and tail marked.
@@ -534,7 +575,8 @@ def plot_null_distribution(dist: ConditionalDistribution, column: int | str = 0,
     it (``T >= t`` or ``T <= t``, the one whose doubling gives the two-sided p-value) in another.
     For a Monte Carlo distribution each bar also carries +/- 2 binomial MCSE,
     ``sqrt(p (1 - p) / N)`` with N the draws on the slice (an understatement for correlated
-    Markov draws, as the legend says).
+    Markov draws, as the legend says): an error bar per bar up to 80 support points, beyond
+    that a shaded band (step-wise over the sorted values), which leaves the bars visible.
 
     Parameters
     ----------
@@ -553,7 +595,8 @@ def plot_null_distribution(dist: ConditionalDistribution, column: int | str = 0,
     matplotlib.figure.Figure
         One axes with up to three bar containers labelled ``"other values"``, ``"tail ..."`` and
         ``"observed ..."`` whose bars together have heights ``pmf`` at x = support / scale; the
-        observed marker has gid ``"observed"``; MCSE error bars are labelled ``"±2 ..."``.
+        observed marker has gid ``"observed"``; the MCSE error bars (or the band, gid
+        ``"mcse-band"``) are labelled ``"±2 ..."``. The legend sits below the axes.
 
     Raises
     ------
@@ -582,6 +625,10 @@ def plot_null_distribution(dist: ConditionalDistribution, column: int | str = 0,
 
     distinct = np.unique(x)
     width = 0.8 * (float(np.min(np.diff(distinct))) if distinct.shape[0] > 1 else 1.0)
+    if distinct.shape[0] > 1:
+        # Closely spaced values over a wide range: bars at least 1/400 of the range wide, so
+        # that each stays visible (neighbours may then touch).
+        width = max(width, float(distinct[-1] - distinct[0]) / 400.0)
     fig = _new_figure((8.0, 4.5))
     ax = fig.add_subplot()
     groups = (
@@ -597,8 +644,16 @@ def plot_null_distribution(dist: ConditionalDistribution, column: int | str = 0,
         n = piece.n_draws
         err = 2.0 * np.sqrt(p * (1.0 - p) / n)
         note = "" if piece.iid else "; too narrow for correlated chain draws"
-        ax.errorbar(x, p, yerr=err, fmt="none", ecolor="0.2", elinewidth=0.8, capsize=2,
-                    label=f"±2 binomial MCSE per bar (N = {n:,}{note})")
+        if piece.n_points <= _MAX_ERROR_BARS:
+            ax.errorbar(x, p, yerr=err, fmt="none", ecolor="0.2", elinewidth=0.8, capsize=2,
+                        label=f"±2 binomial MCSE per bar (N = {n:,}{note})")
+        else:
+            # Hundreds of error bars would hide the bars: a band over the sorted values instead.
+            order = np.argsort(x)
+            ax.fill_between(x[order], np.maximum(p - err, 0.0)[order], (p + err)[order],
+                            step="mid", color="0.5", alpha=0.3, linewidth=0, gid="mcse-band",
+                            zorder=0.5,
+                            label=f"±2 binomial MCSE of each bar, as a band (N = {n:,}{note})")
     p_obs = float(p[is_obs].sum())
     # A thin line finds the observed value even where its bar is too low to see.
     ax.axvline(t, color=_OBSERVED_COLOUR, linestyle=":", linewidth=1.0, gid="observed-line")

@@ -16,6 +16,8 @@ import subprocess
 import sys
 import types
 
+import dataclasses
+
 import numpy as np
 
 import mcexact
@@ -79,6 +81,12 @@ def toy_draws(iid: bool, scale: float = 1.0) -> ConditionalDistribution:
 
 def lines_by_gid(ax, gid):
     return [line for line in ax.lines if line.get_gid() == gid]
+
+
+def fig_legend_texts(ax):
+    """Texts of the figure legend (below the axes) of the figure holding `ax`."""
+    (legend,) = ax.figure.legends
+    return legend.get_texts()
 
 
 def one_line(ax, gid):
@@ -223,7 +231,7 @@ def test_running_pvalue_of_independent_draws():
     chain2 = [ln for ln in ax.lines if ln.get_label() == "chain 2"][0]
     np.testing.assert_array_equal(chain2.get_xdata(), [2, 4, 6, 8, 10])
     np.testing.assert_allclose(chain2.get_ydata(), np.cumsum([1, 1, 1, 0, 0]) / np.arange(1, 6))
-    assert "binomial" in " ".join(t.get_text() for t in ax.get_legend().get_texts())
+    assert "binomial" in " ".join(t.get_text() for t in fig_legend_texts(ax))
     assert "x" in ax.get_title() and "p-value" in ax.get_ylabel() and ax.get_xlabel()
 
 
@@ -256,7 +264,7 @@ def test_running_pvalue_of_markov_chains_agrees_with_the_package(exact_joint, mc
     assert upper - line.get_ydata()[-1] == pytest.approx(
         2 * mcse_of_indicator(mcmc_joint, indicator), rel=1e-12)
     np.testing.assert_array_equal(one_line(ax, "exact").get_ydata(), [exact_score.p_value] * 2)
-    assert "batch means" in " ".join(t.get_text() for t in ax.get_legend().get_texts())
+    assert "batch means" in " ".join(t.get_text() for t in fig_legend_texts(ax))
     assert "dose_mg" in ax.get_title() and "age" in ax.get_title()
 
 
@@ -416,7 +424,8 @@ def test_null_distribution_of_a_tilted_exact_column():
     assert "beta = 0.4" in ax.get_title()
 
 
-def test_null_distribution_of_markov_draws_has_binomial_error_bars(mcmc_age):
+def test_null_distribution_of_markov_draws_has_binomial_error_bars(mcmc_age, monkeypatch):
+    monkeypatch.setattr(plots, "_MAX_ERROR_BARS", mcmc_age.n_points)
     ax = plots.plot_null_distribution(mcmc_age).axes[0]
     counts = np.zeros(mcmc_age.n_points)
     for idx in mcmc_age.chain_index:
@@ -435,6 +444,60 @@ def test_null_distribution_of_markov_draws_has_binomial_error_bars(mcmc_age):
         assert got[v] == pytest.approx((p - h, p + h), abs=1e-15)
     np.testing.assert_array_equal(one_line(ax, "observed").get_xdata(), mcmc_age.observed)
     assert "estimated" in ax.get_ylabel() and "age" in ax.get_title()
+
+
+def test_null_distribution_of_many_points_draws_a_band_instead_of_error_bars(mcmc_age,
+                                                                             monkeypatch):
+    """Beyond _MAX_ERROR_BARS support points the +/- 2 binomial MCSE is one shaded band (gid
+    "mcse-band") whose step edges are p +/- 2 sqrt(p (1 - p) / N) of every bar (by hand), and
+    no error bars; the bars are as before."""
+    monkeypatch.setattr(plots, "_MAX_ERROR_BARS", mcmc_age.n_points - 1)
+    fig = plots.plot_null_distribution(mcmc_age)
+    ax = fig.axes[0]
+    assert not any(isinstance(c, ErrorbarContainer) for c in ax.containers)
+    (band,) = [c for c in ax.collections if c.get_gid() == "mcse-band"]
+    assert "binomial MCSE" in band.get_label()
+    counts = np.zeros(mcmc_age.n_points)
+    for idx in mcmc_age.chain_index:
+        counts += np.bincount(idx, minlength=mcmc_age.n_points)
+    freq = counts / counts.sum()
+    half = 2 * np.sqrt(freq * (1 - freq) / mcmc_age.n_draws)
+    edges = {round(v, 12) for v in band.get_paths()[0].vertices[:, 1]}
+    for p, h in zip(freq, half):
+        assert round(p + h, 12) in edges and round(max(p - h, 0.0), 12) in edges
+    bars = bars_of(ax)
+    values = mcmc_age.support[:, 0].astype(float)
+    np.testing.assert_allclose([bars[v] for v in values], freq, rtol=1e-12, atol=1e-15)
+    assert "binomial MCSE" in " ".join(t.get_text() for t in fig.legends[0].get_texts())
+
+
+def test_running_pvalue_fits_its_axis_to_the_late_draws():
+    """A p-value near 0.002 from 20,000 independent draws whose first draws are all hits (an
+    invented 0/1 series): the early running mean is 1, so the full range would squash the rest.
+    The y axis then ends at 1.15 times the largest running value or band edge after the first 10%
+    of the draws, and a note says so; a p-value whose early values stay in range keeps the full
+    axis and no note."""
+    n = 20_000
+    draws = np.zeros(n, dtype=np.int64)
+    draws[:10] = 1
+    draws[5000::500] = 1
+    dist = ConditionalDistribution(np.array([[0], [1]]), np.log([0.5, 0.5]), np.array([1]),
+                                   ("x",), np.array([1.0]), chain_index=(draws,), iid=True)
+    more, tie = np.array([False, False]), np.array([False, True])
+    ax = plots.plot_running_pvalue(dist, more, tie).axes[0]
+    points = one_line(ax, "pooled").get_xdata()
+    late = np.asarray(points) >= 2000
+    upper = one_line(ax, "mcse-upper").get_ydata()
+    running = one_line(ax, "pooled").get_ydata()
+    top = 1.15 * max(np.max(np.asarray(running)[late]), np.max(np.asarray(upper)[late]))
+    assert ax.get_ylim() == pytest.approx((0.0, top))
+    assert [t for t in ax.texts if t.get_gid() == "clipped-note"]
+    steady = np.zeros(n, dtype=np.int64)
+    steady[::3] = 1
+    even = dataclasses.replace(dist, chain_index=(steady,))
+    ax2 = plots.plot_running_pvalue(even, more, tie).axes[0]
+    assert not [t for t in ax2.texts if t.get_gid() == "clipped-note"]
+    assert ax2.get_ylim()[1] >= np.max(one_line(ax2, "mcse-upper").get_ydata())
 
 
 def test_null_distribution_errors(exact_joint, mcmc_age, mcmc_joint):
