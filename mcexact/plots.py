@@ -678,12 +678,27 @@ def plot_null_distribution(dist: ConditionalDistribution, column: int | str = 0,
 
 # -- two columns ----------------------------------------------------------------------------------
 
-def _cell_edges(centres: np.ndarray) -> np.ndarray:
-    """Edges of cells centred on sorted `centres`: midpoints, the ends half a gap outside."""
-    if centres.shape[0] == 1:
-        return np.array([centres[0] - 0.5, centres[0] + 0.5])
-    mid = 0.5 * (centres[1:] + centres[:-1])
-    return np.r_[2 * centres[0] - mid[0], mid, 2 * centres[-1] - mid[-1]]
+def _cell_edges(centres: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Cells centred on sorted `centres`: edges, and the cell index of each centre.
+
+    A cell reaches half way to each neighbour, but no further from its centre than half the
+    median gap between centres; where two neighbours are further apart than the median gap, an
+    empty cell fills the space between theirs (so that an isolated value at the edge of the support is not drawn as a
+    wide block). On an evenly spaced grid the cells are the plain midpoint cells."""
+    c = np.asarray(centres, float)
+    if c.shape[0] == 1:
+        return np.array([c[0] - 0.5, c[0] + 0.5]), np.array([0])
+    gaps = np.diff(c)
+    cap = 0.5 * float(np.median(gaps))
+    half_left = np.minimum(cap, np.r_[gaps[0], gaps] / 2.0)
+    half_right = np.minimum(cap, np.r_[gaps, gaps[-1]] / 2.0)
+    edges, index = [c[0] - half_left[0]], []
+    for i in range(c.shape[0]):
+        index.append(len(edges) - 1)
+        edges.append(c[i] + half_right[i])
+        if i + 1 < c.shape[0] and c[i] + half_right[i] < c[i + 1] - half_left[i + 1]:
+            edges.append(c[i + 1] - half_left[i + 1])          # an empty cell in the gap
+    return np.array(edges), np.array(index, dtype=np.int64)
 
 
 def _outline(inside: np.ndarray, x_edges: np.ndarray, y_edges: np.ndarray) -> list:
@@ -725,7 +740,9 @@ def plot_joint(dist: ConditionalDistribution, columns: Sequence[int | str] = (0,
     -------
     matplotlib.figure.Figure
         Main axes (first) and colour bar. The main axes holds one QuadMesh whose array is the
-        (n_y, n_x) grid of log10 probabilities (masked where blank), a LineCollection with gid
+        grid of log10 probabilities over its cells (masked where blank): one cell per value of
+        each statistic, plus empty cells where two values lie further apart than the median gap
+        (see ``_cell_edges``), a LineCollection with gid
         ``"outline"`` and the observed marker with gid ``"observed"``; the legend is the
         figure's.
 
@@ -751,7 +768,10 @@ def plot_joint(dist: ConditionalDistribution, columns: Sequence[int | str] = (0,
     log_p = piece.log_pmf()
     x_vals, x_pos = np.unique(piece.support[:, kx], return_inverse=True)
     y_vals, y_pos = np.unique(piece.support[:, ky], return_inverse=True)
-    grid = np.full((y_vals.shape[0], x_vals.shape[0]), np.nan)
+    x_edges, x_cell = _cell_edges(_in_units(dist, ix, x_vals))
+    y_edges, y_cell = _cell_edges(_in_units(dist, iy, y_vals))
+    x_pos, y_pos = x_cell[x_pos.reshape(-1)], y_cell[y_pos.reshape(-1)]
+    grid = np.full((y_edges.shape[0] - 1, x_edges.shape[0] - 1), np.nan)
     with np.errstate(divide="ignore"):
         grid[y_pos, x_pos] = log_p / np.log(10.0)
     grid[~np.isfinite(grid)] = np.nan
@@ -763,8 +783,6 @@ def plot_joint(dist: ConditionalDistribution, columns: Sequence[int | str] = (0,
     inside[y_pos, x_pos] = more_probable
     extreme_p = float(np.exp(logsumexp(log_p[~more_probable]))) if (~more_probable).any() else 0.0
 
-    x_edges = _cell_edges(_in_units(dist, ix, x_vals))
-    y_edges = _cell_edges(_in_units(dist, iy, y_vals))
     fig = _new_figure((7.0, 5.5))
     ax = fig.add_subplot()
     mesh = ax.pcolormesh(x_edges, y_edges, np.ma.masked_invalid(grid), cmap="cividis",

@@ -522,6 +522,14 @@ def mesh_of(ax) -> QuadMesh:
     return meshes[0]
 
 
+def cells_of(mesh, x, y):
+    """(row, column) of the mesh cell holding each (x, y), from the mesh's own edges (cells of
+    unequal width, and empty cells in wide gaps between values)."""
+    coords = mesh.get_coordinates()
+    x_edges, y_edges = coords[0, :, 0], coords[:, 0, 1]
+    return np.searchsorted(y_edges, y) - 1, np.searchsorted(x_edges, x) - 1
+
+
 def segment_set(segments):
     return {tuple(sorted((tuple(map(float, a)), tuple(map(float, b))))) for a, b in segments}
 
@@ -559,11 +567,14 @@ def test_joint_of_a_hand_made_grid():
 def test_joint_of_the_exact_demo(exact_joint):
     fig = plots.plot_joint(exact_joint, ("age", "dose_mg"))
     ax = fig.axes[0]
-    array = mesh_of(ax).get_array()
+    mesh = mesh_of(ax)
+    array = mesh.get_array()
     ages, doses = np.unique(exact_joint.support[:, 1]), np.unique(exact_joint.support[:, 0])
-    assert array.shape == (doses.shape[0], ages.shape[0])           # rows y = dose_mg
-    shown = np.ma.getdata(array)[np.searchsorted(doses, exact_joint.support[:, 0]),
-                                 np.searchsorted(ages, exact_joint.support[:, 1])]
+    # Rows y = dose_mg, columns x = age: at least one cell per value (more where gaps are wide).
+    assert array.shape[0] >= doses.shape[0] and array.shape[1] >= ages.shape[0]
+    rows, cols = cells_of(mesh, exact_joint.support[:, 1] / exact_joint.scales[1],
+                          exact_joint.support[:, 0] / exact_joint.scales[0])
+    shown = np.ma.getdata(array)[rows, cols]
     np.testing.assert_allclose(shown, exact_joint.log_pmf() / np.log(10), rtol=1e-12)
     assert int(np.ma.count(array)) == exact_joint.n_points          # the rest is blank
     marker = one_line(ax, "observed")
@@ -585,10 +596,10 @@ def test_joint_of_markov_draws_that_missed_the_observed_pair(mcmc_joint):
     for idx in mcmc_joint.chain_index:
         counts += np.bincount(idx, minlength=mcmc_joint.n_points)
     drawn = counts > 0
-    doses, ages = np.unique(mcmc_joint.support[:, 0]), np.unique(mcmc_joint.support[:, 1])
-    array = mesh_of(ax).get_array()
-    rows = np.searchsorted(ages, mcmc_joint.support[drawn, 1])
-    cols = np.searchsorted(doses, mcmc_joint.support[drawn, 0])
+    mesh = mesh_of(ax)
+    array = mesh.get_array()
+    rows, cols = cells_of(mesh, mcmc_joint.support[drawn, 0] / mcmc_joint.scales[0],
+                          mcmc_joint.support[drawn, 1] / mcmc_joint.scales[1])
     np.testing.assert_allclose(np.ma.getdata(array)[rows, cols],
                                np.log10(counts[drawn] / counts.sum()), rtol=1e-12)
     assert int(np.ma.count(array)) == int(drawn.sum())
@@ -622,3 +633,24 @@ def test_joint_errors(exact_joint, age_design):
         plots.plot_joint(exact_joint, (0, 2))
     with pytest.raises(DataError, match="two columns"):
         plots.plot_joint(exact_joint, (0,))
+
+
+def test_joint_cells_do_not_stretch_over_wide_gaps():
+    """x values 0, 1, 2 and 10 (median gap 1): cells [-0.5, 0.5], [0.5, 1.5], [1.5, 2.5], an
+    empty cell [2.5, 9.5], then [9.5, 10.5] (by hand); y values 0, 1 are an even grid. The mesh
+    has the empty column masked, and the value at x = 10 sits in its own narrow cell."""
+    edges, index = plots._cell_edges(np.array([0.0, 1.0, 2.0, 10.0]))
+    np.testing.assert_allclose(edges, [-0.5, 0.5, 1.5, 2.5, 9.5, 10.5])
+    np.testing.assert_array_equal(index, [0, 1, 2, 4])
+    even, even_index = plots._cell_edges(np.array([3.0, 5.0, 7.0]))
+    np.testing.assert_allclose(even, [2.0, 4.0, 6.0, 8.0])
+    np.testing.assert_array_equal(even_index, [0, 1, 2])
+    support = np.array([(a, b) for a in (0, 1, 2, 10) for b in (0, 1)])
+    dist = ConditionalDistribution(support=support, log_weights=np.zeros(8), observed=[0, 0],
+                                   names=["u", "v"], scales=[1.0, 1.0])
+    mesh = mesh_of(plots.plot_joint(dist).axes[0])
+    array = mesh.get_array()
+    assert array.shape == (2, 5)
+    assert np.ma.getmaskarray(array)[:, 3].all() and not np.ma.getmaskarray(array)[:, [0, 4]].any()
+    np.testing.assert_allclose(np.ma.getdata(array)[:, 4], np.log10(1 / 8))
+    np.testing.assert_allclose(mesh.get_coordinates()[0, :, 0], [-0.5, 0.5, 1.5, 2.5, 9.5, 10.5])
