@@ -72,6 +72,14 @@ def designs():
     z = rng.integers(0, 5, n)
     y = (rng.random(n) < 0.3).astype(int)
     out.append(("intercept + nuisance 0..2, n=36", mcexact.Design.from_arrays(y, z, w)))
+    # Strata and a nuisance covariate (block chains with fixed strata), from its own stream.
+    rng = np.random.default_rng(777)
+    strata = np.repeat(np.arange(6), 8)
+    w = rng.integers(0, 3, 48)
+    z = rng.integers(0, 4, 48)
+    y = (rng.random(48) < 0.3).astype(int)
+    out.append(("6 strata of 8 + nuisance 0..2", mcexact.Design.from_arrays(y, z, w,
+                                                                            strata=strata)))
     return out
 
 
@@ -191,8 +199,8 @@ def main(argv=None):
     parser.add_argument("--thin", type=int, default=10, help="Markov chain thinning (default 10)")
     parser.add_argument("--rare", action="store_true", help="also the rare-tail table")
     parser.add_argument("--first-seed", type=int, default=0, help="first seed (default 0)")
-    parser.add_argument("--design", type=int, choices=range(3), default=None,
-                        help="only this design (0, 1 or 2, in table order)")
+    parser.add_argument("--design", type=int, choices=range(4), default=None,
+                        help="only this design (0 to 3, in table order)")
     parser.add_argument("--engine", choices=ENGINES, default=None, help="only this engine")
     args = parser.parse_args(argv)
     n_seeds = args.seeds or (40 if args.quick else 200)

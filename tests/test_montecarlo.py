@@ -254,8 +254,9 @@ def _disagreement(where: str, value: float, exact_value: float, mcse: float, not
     """[] when a Monte Carlo value lies within K_MCSE of its error from the exact one and the
     error is informative, else the message."""
     # A row whose support points near the observed statistic could not be ranked from the draws
-    # (fit() says so in the note) carries half their probability as error, which can exceed the
-    # informative cap honestly; agreement within 4 MCSE is still required.
+    # (fit() says so in the note) carries half their probability as a possible offset in its
+    # error, which can exceed the informative cap honestly; agreement within 4 MCSE is still
+    # required.
     cap = np.inf if "count half" in str(note) else MCSE_CAP
     if not (0 < mcse <= cap):
         return [f"{where}: mcse {mcse!r} outside (0, {MCSE_CAP}]"]
