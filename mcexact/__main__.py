@@ -168,10 +168,14 @@ def _add_seed_option(g) -> None:
                         "entropy is drawn, printed and recorded in the JSON and saved run)")
 
 
-def _add_cluster_options(p: argparse.ArgumentParser) -> None:
-    g = p.add_argument_group("parallel runs (the numbers do not depend on these)")
+def _add_jobs_option(g) -> None:
     g.add_argument("--jobs", type=_jobs, metavar="N", default=-1,
                    help="chains run at once (default -1: all cores)")
+
+
+def _add_cluster_options(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("parallel runs (the numbers do not depend on these)")
+    _add_jobs_option(g)
     g.add_argument("--backend", metavar="NAME",
                    help="joblib backend for the chains, e.g. loky or dask (default: threads)")
     g.add_argument("--scheduler", metavar="ADDRESS",
@@ -314,8 +318,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="draws per Monte Carlo part (default: the demo's own, else "
                         f"{_fit_defaults()['n_draws']:,})")
     _add_seed_option(p)
-    p.add_argument("--jobs", type=_jobs, metavar="N", default=-1,
-                   help="chains run at once (default -1: all cores)")
+    _add_jobs_option(p)
     _add_output_options(p)
     p.set_defaults(func=_demo)
     return parser
