@@ -128,7 +128,8 @@ class Sample:
         Per chain, the state to continue from (MCMC: response vector and bit generator state).
     seconds : float
     null_mean, null_cov : ndarray or None
-        Exact null moments of T when known (nuisance: intercept and/or strata only).
+        Exact null moments of T when known: from the network for direct draws, in closed form
+        for swap chains (nuisance: intercept and/or strata only).
     info : dict
     moment_draws : list of ndarray or None
         Block chains at the null: per chain and draw, the Rao-Blackwellized moments of
